@@ -1,0 +1,194 @@
+"""The `cuewatch` command line: parse, call one stage function, print a summary or --json.
+
+No logic lives here that a test cannot reach through the stage modules.  User errors
+(bad configuration, bad input, a busy store) print one sentence to stderr and exit 2.
+"""
+
+from __future__ import annotations
+
+import functools
+import json
+import sys
+from pathlib import Path
+
+import click
+
+from monitor import __version__
+from monitor.config import ENV_VAR, Config, ConfigError, load_config
+
+EXIT_USER_ERROR = 2
+
+
+def user_errors() -> tuple[type[Exception], ...]:
+    """Exception types that are the user's to fix (one line, exit 2)."""
+    from monitor.ingest import IngestUsageError
+    from monitor.ingest_checks import FileRejected
+    from monitor.store import StoreBusy, StoreMismatch
+
+    errors: list[type[Exception]] = [
+        ConfigError,
+        IngestUsageError,
+        FileRejected,
+        StoreBusy,
+        StoreMismatch,
+    ]
+    for module, name in (
+        ("monitor.windows", "RefitUsageError"),
+        ("monitor.alerts", "AlertUsageError"),
+        ("monitor.audit", "ExportUsageError"),
+        ("monitor.schedule", "ScheduleUsageError"),
+    ):
+        try:
+            mod = __import__(module, fromlist=[name])
+            errors.append(getattr(mod, name))
+        except (ImportError, AttributeError):
+            continue
+    return tuple(errors)
+
+
+def fail(message: str) -> None:
+    click.echo(f"cuewatch: {message}", err=True)
+    sys.exit(EXIT_USER_ERROR)
+
+
+def handles_user_errors(fn):
+    @functools.wraps(fn)
+    def wrapper(*args, **kwargs):
+        try:
+            return fn(*args, **kwargs)
+        except user_errors() as exc:
+            fail(str(exc).strip().splitlines()[0] if str(exc).strip() else type(exc).__name__)
+
+    return wrapper
+
+
+def print_json(doc) -> None:
+    click.echo(json.dumps(doc, indent=2, default=str, allow_nan=False))
+
+
+class Context:
+    def __init__(self, config_path: str | None):
+        self.config_path = config_path
+        self._config: Config | None = None
+
+    @property
+    def config(self) -> Config:
+        if self._config is None:
+            self._config = load_config(self.config_path)
+        return self._config
+
+
+@click.group(context_settings={"help_option_names": ["-h", "--help"]})
+@click.option(
+    "--config",
+    "config_path",
+    type=click.Path(dir_okay=False),
+    envvar=ENV_VAR,
+    help=f"Configuration file (TOML). Defaults to ${ENV_VAR}.",
+)
+@click.version_option(__version__, prog_name="cuewatch")
+@click.pass_context
+def main(ctx: click.Context, config_path: str | None) -> None:
+    """cuewatch: keeps watching a judgment log - cue weights, consistency, achievement,
+    forbidden-cue use - and tells oversight when something changes."""
+    ctx.obj = Context(config_path)
+
+
+@main.command()
+@click.option("--json", "as_json", is_flag=True, help="Print the result as JSON.")
+@click.pass_obj
+@handles_user_errors
+def init(obj: Context, as_json: bool) -> None:
+    """Create or migrate the store (a no-op when it is up to date)."""
+    from monitor.store import Store
+
+    result = Store(obj.config).init()
+    if as_json:
+        print_json(result)
+        return
+    if result["created"]:
+        click.echo(f"Created store {result['path']} (schema version {result['schema_version']}).")
+    elif result["applied"] or result["cue_columns_added"]:
+        click.echo(
+            f"Migrated store {result['path']} to schema version {result['schema_version']}"
+            + (f"; added cue columns {', '.join(result['cue_columns_added'])}" if result["cue_columns_added"] else "")
+            + "."
+        )
+    else:
+        click.echo(f"Store {result['path']} is up to date (schema version {result['schema_version']}).")
+
+
+@main.command()
+@click.argument("paths", nargs=-1)
+@click.option("--kind", type=click.Choice(["decisions", "outcomes"]), help="What the files hold.")
+@click.option("--json", "as_json", is_flag=True, help="Print the summary as JSON.")
+@click.pass_obj
+@handles_user_errors
+def ingest(obj: Context, paths: tuple[str, ...], kind: str | None, as_json: bool) -> None:
+    """Append decision / outcome files (or the landing folders; '-' = JSON Lines on stdin)."""
+    from monitor.ingest import ingest as run_ingest
+
+    summary = _with_progress(
+        lambda on_file: run_ingest(obj.config, paths, kind=kind, on_file=on_file),
+        enabled=not as_json,
+    )
+    if as_json:
+        print_json(summary.to_json())
+    else:
+        click.echo(format_ingest_summary(summary))
+    if summary.failed_files:
+        first = summary.failed_files[0]
+        fail(f"{len(summary.failed_files)} file(s) failed; first: {first.path}: {first.message}")
+
+
+def _with_progress(run, enabled: bool):
+    """Run ``run(on_file)`` with a rich progress bar on stderr when it is a terminal."""
+    if not enabled or not sys.stderr.isatty():
+        return run(None)
+    from rich.progress import BarColumn, MofNCompleteColumn, Progress, TextColumn
+
+    with Progress(
+        TextColumn("{task.description}"), BarColumn(), MofNCompleteColumn(), transient=True
+    ) as progress:
+        task = progress.add_task("ingest", total=None)
+
+        def on_file(i: int, total: int, path: Path) -> None:
+            progress.update(task, total=total, completed=i, description=f"ingest {path.name}")
+
+        return run(on_file)
+
+
+def format_ingest_summary(summary) -> str:
+    ingested = sum(f.status == "ingested" for f in summary.files)
+    lines = [
+        f"{ingested} file(s) ingested, {summary.skipped_files} skipped (already ingested), "
+        f"{len(summary.failed_files)} failed.",
+        f"Rows: {summary.accepted} accepted, {summary.quarantined} quarantined, "
+        f"{summary.duplicates} duplicates.",
+    ]
+    if summary.quarantine_reasons:
+        reasons = ", ".join(f"{k} {v}" for k, v in summary.quarantine_reasons.items())
+        lines.append(f"Quarantine reasons: {reasons}.")
+    for f in summary.failed_files:
+        lines.append(f"FAILED {f.path}: {f.message}")
+    return "\n".join(lines)
+
+
+def _register_optional_commands() -> None:
+    """Commands owned by later stages register themselves when their module exists."""
+    for module in (
+        "monitor.cli_fits",
+        "monitor.cli_alerts",
+        "monitor.cli_audit",
+        "monitor.cli_demo",
+    ):
+        try:
+            mod = __import__(module, fromlist=["register"])
+        except ImportError as exc:
+            if exc.name != module:
+                raise
+            continue
+        mod.register(main)
+
+
+_register_optional_commands()

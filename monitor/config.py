@@ -1,0 +1,353 @@
+"""Typed configuration: one place that knows every key, its type, its default and its error.
+
+The file is TOML (see DESIGN.md, "Configuration").  ``load_config`` validates it
+with pydantic and turns every problem into a ``ConfigError`` whose message is one
+sentence naming the key and the file.  Relative paths are resolved against the
+directory of the configuration file.
+"""
+
+from __future__ import annotations
+
+import hashlib
+import os
+import re
+import tomllib
+from pathlib import Path
+from typing import Annotated, Literal
+from zoneinfo import ZoneInfo, ZoneInfoNotFoundError
+
+from pydantic import (
+    BaseModel,
+    ConfigDict,
+    Field,
+    ValidationError,
+    field_validator,
+    model_validator,
+)
+
+ENV_VAR = "CUEWATCH_CONFIG"
+
+# Cue names become column names in the store and keys in reports, so they must be
+# plain identifiers that cannot collide with the store's own columns.
+_NAME = re.compile(r"^[A-Za-z][A-Za-z0-9_]{0,62}$")
+RESERVED_COLUMNS = frozenset(
+    {
+        "decision_id",
+        "decided_at",
+        "decision_maker",
+        "team",
+        "judgment",
+        "batch_id",
+        "ingested_at",
+        "source_line",
+        "decided_day",
+    }
+)
+
+
+class ConfigError(Exception):
+    """A user error in the configuration: one sentence naming the key and the file."""
+
+
+class _Strict(BaseModel):
+    model_config = ConfigDict(extra="forbid", frozen=True)
+
+
+def _check_timezone(value: str) -> str:
+    try:
+        ZoneInfo(value)
+    except (ZoneInfoNotFoundError, ValueError) as exc:
+        raise ValueError(f"unknown time zone {value!r}") from exc
+    return value
+
+
+class StoreConfig(_Strict):
+    path: Path = Path("data/cuewatch.duckdb")
+    lock_timeout_s: float = Field(30.0, ge=0)
+    read_retry_s: float = Field(5.0, ge=0)
+
+
+class DecisionsConfig(_Strict):
+    landing: Path | None = None
+    id: str
+    decided_at: str
+    decision_maker: str
+    team: str | None = None
+    judgment: str
+    judgment_range: tuple[float, float] | None = None
+    judgment_values: dict[str, float] = Field(default_factory=dict)
+    timezone: str = "UTC"
+
+    _tz = field_validator("timezone")(_check_timezone)
+
+    @model_validator(mode="after")
+    def _range_ordered(self) -> DecisionsConfig:
+        if self.judgment_range and self.judgment_range[0] > self.judgment_range[1]:
+            raise ValueError("judgment_range must be [low, high] with low <= high")
+        return self
+
+
+class OutcomesConfig(_Strict):
+    landing: Path | None = None
+    id: str
+    observed_at: str
+    criterion: str
+    criterion_values: dict[str, float] = Field(default_factory=dict)
+    criterion_range: tuple[float, float] | None = None
+    timezone: str | None = None
+
+    _tz = field_validator("timezone")(lambda v: v if v is None else _check_timezone(v))
+
+
+class CueConfig(_Strict):
+    column: str | None = None
+    type: Literal["numeric", "binary", "categorical"]
+    unit: str | None = None
+    range: tuple[float, float] | None = None
+    values: dict[str, float] = Field(default_factory=dict)
+    levels: list[str] = Field(default_factory=list)
+    reference: str | None = None
+    description: str | None = None
+
+    @model_validator(mode="after")
+    def _consistent(self) -> CueConfig:
+        if self.type == "categorical":
+            if len(self.levels) < 2:
+                raise ValueError("a categorical cue needs at least two levels")
+            if len(set(self.levels)) != len(self.levels):
+                raise ValueError("levels must be distinct")
+            if self.reference is None:
+                raise ValueError("a categorical cue needs a reference level")
+            if self.reference not in self.levels:
+                raise ValueError(f"reference {self.reference!r} is not one of levels {self.levels}")
+        else:
+            if self.levels or self.reference is not None:
+                raise ValueError("levels and reference apply to categorical cues only")
+        if self.type == "binary":
+            bad = {k: v for k, v in self.values.items() if v not in (0, 1)}
+            if bad:
+                raise ValueError(f"binary values must map to 0 or 1, not {bad}")
+        elif self.values:
+            raise ValueError("values applies to binary cues only")
+        if self.range is not None:
+            if self.type != "numeric":
+                raise ValueError("range applies to numeric cues only")
+            if self.range[0] > self.range[1]:
+                raise ValueError("range must be [low, high] with low <= high")
+        return self
+
+
+class PolicyConfig(_Strict):
+    forbidden: list[str] = Field(default_factory=list)
+    tolerance: float = Field(0.10, gt=0)
+    fdr: float = Field(0.05, gt=0, lt=1)
+    consecutive_windows: int = Field(2, ge=1)
+    proxy_tolerance: float | None = Field(None, gt=0)
+    min_rows: int = Field(40, ge=3)
+    drift_alpha: float = Field(0.001, gt=0, lt=1)
+    drift_min_std_change: float = Field(0.10, ge=0)
+    consistency_floor: float | None = Field(0.5, ge=0, le=1)
+    achievement_floor: float | None = Field(None, ge=-1, le=1)
+    achievement_min_linked: int = Field(100, ge=3)
+
+
+class WindowsConfig(_Strict):
+    length_days: int = Field(90, ge=1)
+    step_days: int = Field(7, ge=1)
+    min_rows: int = Field(40, ge=3)
+    origin: str = "2000-01-02"  # a Sunday: windows end on the same weekday every week
+
+    @field_validator("origin")
+    @classmethod
+    def _iso_date(cls, value: str) -> str:
+        from datetime import date
+
+        date.fromisoformat(value)
+        return value
+
+
+class EmailConfig(_Strict):
+    host: str
+    port: int = Field(25, ge=1, le=65535)
+    security: Literal["none", "starttls", "ssl"] = "none"
+    sender: str
+    to: list[str] = Field(min_length=1)
+    username_env: str | None = None
+    password_env: str | None = None
+    timeout_s: float = Field(20.0, gt=0)
+
+
+class WebhookConfig(_Strict):
+    url: str
+    secret_env: str | None = None
+    timeout_s: float = Field(10.0, gt=0)
+    retries: int = Field(3, ge=0)
+    backoff_s: float = Field(1.0, ge=0)
+
+    @field_validator("url")
+    @classmethod
+    def _http(cls, value: str) -> str:
+        if not value.startswith(("http://", "https://")):
+            raise ValueError("url must start with http:// or https://")
+        return value
+
+
+class AlertsConfig(_Strict):
+    file: Path | None = None
+    email: EmailConfig | None = None
+    webhook: WebhookConfig | None = None
+
+
+class ScheduleConfig(_Strict):
+    cron: str = "0 2 * * *"
+    timezone: str = "UTC"
+    misfire_grace_s: int = Field(3600, ge=1)
+
+    _tz = field_validator("timezone")(_check_timezone)
+
+    @field_validator("cron")
+    @classmethod
+    def _five_fields(cls, value: str) -> str:
+        if len(value.split()) != 5:
+            raise ValueError("cron must have five fields: minute hour day month day-of-week")
+        return value
+
+
+class IngestConfig(_Strict):
+    delimiter: str = ","
+    encoding: str = "utf-8"
+    future_tolerance_hours: float = Field(24.0, ge=0)
+    earliest: str = "1990-01-01"
+
+
+class Config(_Strict):
+    store: StoreConfig = Field(default_factory=StoreConfig)
+    decisions: DecisionsConfig
+    outcomes: OutcomesConfig | None = None
+    cues: dict[str, CueConfig] = Field(min_length=1)
+    policy: PolicyConfig = Field(default_factory=PolicyConfig)
+    windows: WindowsConfig = Field(default_factory=WindowsConfig)
+    alerts: AlertsConfig = Field(default_factory=AlertsConfig)
+    schedule: ScheduleConfig = Field(default_factory=ScheduleConfig)
+    ingest: IngestConfig = Field(default_factory=IngestConfig)
+
+    # Not part of the file: where it came from and its content hash.
+    source: Annotated[Path | None, Field(exclude=True)] = None
+    digest: Annotated[str, Field(exclude=True)] = ""
+
+    @model_validator(mode="after")
+    def _cross_checks(self) -> Config:
+        for name in self.cues:
+            if not _NAME.match(name):
+                raise ValueError(
+                    f"cues.{name}: a cue name must be a letter followed by letters, digits or '_'"
+                )
+            if name.lower() in RESERVED_COLUMNS:
+                raise ValueError(f"cues.{name}: the name is reserved for the store's own columns")
+        for cue in self.policy.forbidden:
+            if cue not in self.cues:
+                raise ValueError(f"policy.forbidden: {cue!r} is not a declared cue")
+        return self
+
+    # --- derived views used by other stages -------------------------------------------
+
+    def cue_column(self, name: str) -> str:
+        """The column holding cue ``name`` in the decision files."""
+        return self.cues[name].column or name
+
+    def design_columns(self) -> list[str]:
+        """The model's design columns in order: numeric and binary cues by name,
+        categorical cues as one dummy per non-reference level named ``cue=level``."""
+        out: list[str] = []
+        for name, cue in self.cues.items():
+            if cue.type == "categorical":
+                out.extend(f"{name}={lvl}" for lvl in cue.levels if lvl != cue.reference)
+            else:
+                out.append(name)
+        return out
+
+    def design_groups(self) -> dict[str, list[int]]:
+        """For each cue, the indices of its design columns."""
+        groups: dict[str, list[int]] = {}
+        cols = self.design_columns()
+        for name in self.cues:
+            groups[name] = [i for i, c in enumerate(cols) if c == name or c.startswith(name + "=")]
+        return groups
+
+    @property
+    def judgment_is_binary(self) -> bool:
+        vals = set(self.decisions.judgment_values.values())
+        rng = self.decisions.judgment_range
+        return (bool(vals) and vals <= {0.0, 1.0}) or (rng is not None and tuple(rng) == (0, 1))
+
+
+def _location(loc: tuple) -> str:
+    return ".".join(str(p) for p in loc if not isinstance(p, int) or True)
+
+
+def _first_error(exc: ValidationError, source: Path) -> ConfigError:
+    err = exc.errors()[0]
+    key = _location(err.get("loc", ())) or "(top level)"
+    kind = err.get("type", "")
+    msg = err.get("msg", "invalid value")
+    if msg.startswith("Value error, "):
+        msg = msg[len("Value error, ") :]
+    if kind == "extra_forbidden":
+        return ConfigError(f"{source}: unknown key '{key}'.")
+    if kind == "missing":
+        return ConfigError(f"{source}: required key '{key}' is missing.")
+    if kind == "literal_error":
+        return ConfigError(f"{source}: key '{key}': {msg}.")
+    # Cross-field errors already name their key ("cues.x: ...", "policy.forbidden: ...").
+    if key == "(top level)" and re.match(r"^[a-z_]+(\.[A-Za-z0-9_]+)*:", msg):
+        return ConfigError(f"{source}: {msg.rstrip('.')}.")
+    return ConfigError(f"{source}: key '{key}': {msg.rstrip('.')}.")
+
+
+def _resolve(base: Path, path: Path | None) -> Path | None:
+    if path is None:
+        return None
+    path = Path(os.path.expanduser(str(path)))
+    return path if path.is_absolute() else (base / path).resolve()
+
+
+def load_config(path: str | os.PathLike | None = None) -> Config:
+    """Read, validate and resolve a configuration file.
+
+    ``path`` falls back to the ``CUEWATCH_CONFIG`` environment variable.  Raises
+    ``ConfigError`` (one sentence, names the key and the file) on any user error.
+    """
+    if path is None:
+        path = os.environ.get(ENV_VAR)
+    if not path:
+        raise ConfigError(f"no configuration given: pass --config FILE or set {ENV_VAR}.")
+    source = Path(path).expanduser().resolve()
+    try:
+        raw_bytes = source.read_bytes()
+    except FileNotFoundError:
+        raise ConfigError(f"{source}: configuration file not found.") from None
+    except OSError as exc:
+        raise ConfigError(f"{source}: cannot read the configuration ({exc.strerror}).") from None
+    try:
+        raw = tomllib.loads(raw_bytes.decode("utf-8"))
+    except (tomllib.TOMLDecodeError, UnicodeDecodeError) as exc:
+        raise ConfigError(f"{source}: not valid TOML ({exc}).") from None
+    try:
+        cfg = Config.model_validate(raw)
+    except ValidationError as exc:
+        raise _first_error(exc, source) from None
+    base = source.parent
+    updates = {
+        "store": cfg.store.model_copy(update={"path": _resolve(base, cfg.store.path)}),
+        "decisions": cfg.decisions.model_copy(
+            update={"landing": _resolve(base, cfg.decisions.landing)}
+        ),
+        "alerts": cfg.alerts.model_copy(update={"file": _resolve(base, cfg.alerts.file)}),
+        "source": source,
+        "digest": hashlib.sha256(raw_bytes).hexdigest(),
+    }
+    if cfg.outcomes is not None:
+        updates["outcomes"] = cfg.outcomes.model_copy(
+            update={"landing": _resolve(base, cfg.outcomes.landing)}
+        )
+    return cfg.model_copy(update=updates)

@@ -1,0 +1,402 @@
+"""The per-record checks of ingest, written as set-based SQL built from the configuration.
+
+Every reason code a record can be quarantined with is listed in ``REASONS``; the
+first failing check (in the order of that list) names the reason.  All identifiers
+and literals that come from the configuration go through the store's quoting.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+from datetime import datetime
+from pathlib import Path
+
+from monitor.config import Config, CueConfig
+from monitor.store import quote_ident as qi
+from monitor.store import sql_literal as lit
+
+KINDS = ("decisions", "outcomes")
+
+REASONS = {
+    "malformed_record": "the record could not be read (CSV line split wrongly, or not a JSON object)",
+    "missing_field": "a required field is empty or absent",
+    "unparseable_timestamp": "a timestamp could not be read",
+    "implausible_timestamp": "a timestamp lies in the future beyond the tolerance or before the earliest date",
+    "judgment_not_numeric": "the judgment is not a number",
+    "judgment_not_in_map": "the judgment is not one of the configured judgment_values",
+    "judgment_out_of_range": "the judgment lies outside judgment_range",
+    "criterion_not_numeric": "the criterion is not a number",
+    "criterion_not_in_map": "the criterion is not one of the configured criterion_values",
+    "criterion_out_of_range": "the criterion lies outside criterion_range",
+    "cue_not_numeric": "a numeric cue is not a number",
+    "cue_out_of_range": "a numeric cue lies outside its configured range",
+    "binary_not_in_map": "a binary cue value is not in its values map (or not 0/1)",
+    "undeclared_level": "a categorical cue value is not one of its declared levels",
+    "conflicting_duplicate": "the id is already stored (or earlier in the file) with different content",
+    "outcome_before_decision": "the outcome is dated before its decision",
+}
+
+
+class FileRejected(Exception):
+    """The whole file cannot be ingested (missing column, unknown format): a user error."""
+
+
+@dataclass(frozen=True)
+class FileColumn:
+    alias: str  # safe staging name
+    source: str  # the column / key name in the file
+    role: str  # id | time | maker | team | value | cue
+    required: bool
+    cue: str | None = None
+
+
+def _v(alias: str) -> str:
+    """The trimmed text value of a staged column, NULL when empty."""
+    return f"NULLIF(trim({alias}), '')"
+
+
+def _shown(alias: str) -> str:
+    return f"coalesce('''' || {alias} || '''', 'empty')"
+
+
+@dataclass
+class Checks:
+    """SQL for one kind of file under one configuration."""
+
+    config: Config
+    kind: str
+    columns: list[FileColumn]
+    timezone: str
+
+    # --- file level ---------------------------------------------------------------
+
+    def require_columns(self, present: list[str], label: str) -> None:
+        if not present:  # JSON Lines: checked per record
+            return
+        missing = [c.source for c in self.columns if c.required and c.source not in present]
+        if missing:
+            raise FileRejected(
+                f"{label} has no column {', '.join(repr(m) for m in missing)} "
+                f"(the configuration's [{self.kind}] / [cues] name it)"
+            )
+
+    def col(self, role: str) -> FileColumn:
+        return next(c for c in self.columns if c.role == role)
+
+    # --- parsing ---------------------------------------------------------------------
+
+    def _value_expr(self, alias: str, values: dict[str, float]) -> str:
+        if values:
+            whens = " ".join(f"WHEN {lit(k)} THEN {float(v)!r}" for k, v in values.items())
+            return f"(CASE {_v(alias)} {whens} END)"
+        return f"(CASE WHEN isfinite(TRY_CAST({_v(alias)} AS DOUBLE)) THEN TRY_CAST({_v(alias)} AS DOUBLE) END)"
+
+    def _cue_expr(self, c: FileColumn, cue: CueConfig) -> str:
+        v = _v(c.alias)
+        if cue.type == "categorical":
+            levels = ", ".join(lit(x) for x in cue.levels)
+            return f"(CASE WHEN {v} IN ({levels}) THEN {v} END)"
+        if cue.type == "binary":
+            if cue.values:
+                return self._value_expr(c.alias, cue.values)
+            return f"(CASE WHEN TRY_CAST({v} AS DOUBLE) IN (0, 1) THEN TRY_CAST({v} AS DOUBLE) END)"
+        return f"(CASE WHEN isfinite(TRY_CAST({v} AS DOUBLE)) THEN TRY_CAST({v} AS DOUBLE) END)"
+
+    def _value_checks(self, c: FileColumn, values: dict, rng, prefix: str) -> list[tuple[str, str, str]]:
+        v = _v(c.alias)
+        parsed = f"p_{c.alias}"
+        out = [(f"{v} IS NULL", "missing_field", f"'{c.source} is empty'")]
+        if values:
+            keys = ", ".join(lit(k) for k in values)
+            out.append((f"{parsed} IS NULL", f"{prefix}_not_in_map",
+                        f"'{c.source}=' || {_shown(c.alias)} || ' is not one of {keys.replace(chr(39), '')}'"))
+        else:
+            out.append((f"{parsed} IS NULL", f"{prefix}_not_numeric",
+                        f"'{c.source}=' || {_shown(c.alias)} || ' is not a number'"))
+        if rng is not None:
+            lo, hi = float(rng[0]), float(rng[1])
+            out.append((f"{parsed} NOT BETWEEN {lo!r} AND {hi!r}", f"{prefix}_out_of_range",
+                        f"'{c.source}=' || {_shown(c.alias)} || ' is outside [{lo:g}, {hi:g}]'"))
+        return out
+
+    def _cue_checks(self, c: FileColumn, cue: CueConfig) -> list[tuple[str, str, str]]:
+        v = _v(c.alias)
+        parsed = f"p_{c.alias}"
+        src = c.source.replace("'", "''")
+        out = [(f"{v} IS NULL", "missing_field", f"'{src} is empty'")]
+        if cue.type == "numeric":
+            out.append((f"{parsed} IS NULL", "cue_not_numeric",
+                        f"'{src}=' || {_shown(c.alias)} || ' is not a number'"))
+            if cue.range is not None:
+                lo, hi = float(cue.range[0]), float(cue.range[1])
+                out.append((f"{parsed} NOT BETWEEN {lo!r} AND {hi!r}", "cue_out_of_range",
+                            f"'{src}=' || {_shown(c.alias)} || ' is outside [{lo:g}, {hi:g}]'"))
+        elif cue.type == "binary":
+            allowed = ", ".join(cue.values) if cue.values else "0, 1"
+            out.append((f"{parsed} IS NULL", "binary_not_in_map",
+                        f"'{src}=' || {_shown(c.alias)} || ' is not one of {allowed.replace(chr(39), '')}'"))
+        else:
+            allowed = ", ".join(cue.levels)
+            out.append((f"{parsed} IS NULL", "undeclared_level",
+                        f"'{src}=' || {_shown(c.alias)} || ' is not a declared level ({allowed.replace(chr(39), '')})'"))
+        return out
+
+    def checked_sql(self, *, horizon: datetime, earliest: str, fmt: str) -> str:
+        """SELECT over _raw giving parsed columns, a reason code and a message per record."""
+        parsed: list[str] = []
+        checks: list[tuple[str, str, str]] = [
+            ("is_malformed", "malformed_record", "'not a JSON object: ' || left(coalesce(raw_line, ''), 200)"),
+        ]
+        for c in self.columns:
+            v = _v(c.alias)
+            if c.role in ("id", "maker", "team"):
+                parsed.append(f"{v} AS p_{c.alias}")
+                if c.required:
+                    checks.append((f"{v} IS NULL", "missing_field", f"'{c.source} is empty'"))
+            elif c.role == "time":
+                parsed.append(f"TRY_CAST({v} AS TIMESTAMPTZ) AS p_{c.alias}")
+                checks.append((f"{v} IS NULL", "missing_field", f"'{c.source} is empty'"))
+                checks.append((f"p_{c.alias} IS NULL", "unparseable_timestamp",
+                               f"'{c.source}=' || {_shown(c.alias)} || ' is not a timestamp'"))
+                checks.append((
+                    f"p_{c.alias} > {lit(horizon.isoformat())}::TIMESTAMPTZ "
+                    f"OR p_{c.alias} < {lit(earliest)}::TIMESTAMPTZ",
+                    "implausible_timestamp",
+                    f"'{c.source}=' || {_shown(c.alias)} || ' is in the future or before {earliest}'",
+                ))
+            elif c.role == "value":
+                values, rng, prefix = self._value_spec()
+                parsed.append(f"{self._value_expr(c.alias, values)} AS p_{c.alias}")
+                checks.extend(self._value_checks(c, values, rng, prefix))
+            elif c.role == "cue":
+                cue = self.config.cues[c.cue]
+                parsed.append(f"{self._cue_expr(c, cue)} AS p_{c.alias}")
+                checks.extend(self._cue_checks(c, cue))
+        reason = "CASE " + " ".join(f"WHEN {w} THEN '{r}'" for w, r, _ in checks) + " END"
+        message = "CASE " + " ".join(f"WHEN {w} THEN {m}" for w, _, m in checks) + " END"
+        raw_json = self._raw_json_expr(fmt)
+        line = self._line_expr(fmt)
+        return (
+            f"SELECT ord, {line} AS source_line, is_blank, {raw_json} AS raw_row, "
+            f"{', '.join(c.alias for c in self.columns)}, parsed.* EXCLUDE (ord, is_blank, is_malformed, raw_line, {', '.join(c.alias for c in self.columns)}), "
+            f"{reason} AS reason, {message} AS message, false AS is_duplicate "
+            f"FROM (SELECT rowid AS ord, *, {', '.join(parsed)} FROM _raw) AS parsed"
+        )
+
+    def _value_spec(self):
+        if self.kind == "decisions":
+            d = self.config.decisions
+            return d.judgment_values, d.judgment_range, "judgment"
+        o = self.config.outcomes
+        return o.criterion_values, o.criterion_range, "criterion"
+
+    def _raw_json_expr(self, fmt: str) -> str:
+        if fmt == "jsonl":
+            return "raw_line"
+        pairs = ", ".join(f"{lit(c.source)}, {c.alias}" for c in self.columns)
+        return f"CAST(json_object({pairs}) AS VARCHAR)"
+
+    def _line_expr(self, fmt: str) -> str:
+        if fmt == "jsonl":
+            return "ord + 1"
+        if fmt == "parquet":
+            return "ord + 1"
+        # CSV: the header is line 1; lines the reader rejected shift later records.
+        return (
+            "ord + 2 + (SELECT count(*) FROM (SELECT line - row_number() OVER (ORDER BY line) AS t "
+            "FROM (SELECT DISTINCT line FROM _rejects)) WHERE t <= ord + 1)"
+        )
+
+    # --- duplicates and conflicts --------------------------------------------------------
+
+    def _compare(self, a: str, b: str, stored: bool) -> str:
+        """SQL: record a's parsed content equals b's (b a stored row when ``stored``)."""
+        parts = []
+        for c in self.columns:
+            if c.role == "id":
+                continue
+            left = f"{a}.p_{c.alias}"
+            right = f"{b}.{self._stored_column(c)}" if stored else f"{b}.p_{c.alias}"
+            parts.append(f"{left} IS NOT DISTINCT FROM {right}")
+        return " AND ".join(parts)
+
+    def _stored_column(self, c: FileColumn) -> str:
+        return {
+            "time": "decided_at" if self.kind == "decisions" else "observed_at",
+            "maker": "decision_maker",
+            "team": "team",
+            "value": "judgment" if self.kind == "decisions" else "criterion",
+        }.get(c.role) or qi(c.cue)
+
+    def classify_duplicates_sql(self) -> str:
+        """Statements that mark duplicates and conflicting duplicates in _checked."""
+        idc = f"p_{self.col('id').alias}"
+        conflict_msg = "'id ' || c.{id} || ' is already stored with different content; the stored record is kept'"
+        if self.kind == "decisions":
+            stored = (
+                f"UPDATE _checked AS c SET is_duplicate = ({self._compare('c', 'd', True)}), "
+                f"reason = CASE WHEN ({self._compare('c', 'd', True)}) THEN NULL ELSE 'conflicting_duplicate' END, "
+                f"message = CASE WHEN ({self._compare('c', 'd', True)}) THEN NULL ELSE {conflict_msg.format(id=idc)} END "
+                f"FROM decisions d WHERE d.decision_id = c.{idc} AND c.reason IS NULL AND NOT c.is_blank"
+            )
+        else:
+            tcol = f"p_{self.col('time').alias}"
+            # An outcome identical to one already in the history is a re-delivery; a
+            # different one for the same decision is a correction and is appended.
+            stored = (
+                f"UPDATE _checked AS c SET is_duplicate = true FROM outcomes o "
+                f"WHERE o.decision_id = c.{idc} AND o.observed_at = c.{tcol} "
+                f"AND o.criterion IS NOT DISTINCT FROM c.p_{self.col('value').alias} "
+                f"AND c.reason IS NULL AND NOT c.is_blank;\n"
+                f"UPDATE _checked AS c SET reason = 'outcome_before_decision', "
+                f"message = 'outcome observed at ' || CAST(c.{tcol} AS VARCHAR) || ' is before its decision at ' "
+                f"|| CAST(d.decided_at AS VARCHAR) FROM decisions d "
+                f"WHERE d.decision_id = c.{idc} AND c.{tcol} < d.decided_at AND c.reason IS NULL "
+                f"AND NOT c.is_duplicate AND NOT c.is_blank"
+            )
+        same = self._compare("c", "f", False)
+        in_file_conflict = (
+            "'id ' || c.{id} || ' appears earlier in this file (line ' || f.source_line || ') with different content'"
+        ).format(id=idc)
+        within = (
+            f"UPDATE _checked AS c SET is_duplicate = ({same}), "
+            f"reason = CASE WHEN ({same}) THEN NULL ELSE "
+            f"{'NULL' if self.kind == 'outcomes' else repr('conflicting_duplicate')} END, "
+            f"message = CASE WHEN ({same}) THEN NULL ELSE "
+            f"{'NULL' if self.kind == 'outcomes' else in_file_conflict} END "
+            f"FROM (SELECT {idc} AS k, min(ord) AS first_ord FROM _checked "
+            f"      WHERE reason IS NULL AND NOT is_duplicate AND NOT is_blank "
+            f"      GROUP BY {idc} HAVING count(*) > 1) AS m, _checked AS f "
+            f"WHERE c.{idc} = m.k AND f.ord = m.first_ord AND c.ord > m.first_ord "
+            f"AND c.reason IS NULL AND NOT c.is_duplicate AND NOT c.is_blank"
+        )
+        if self.kind == "outcomes":
+            # Several rows for one decision in one file: identical ones are duplicates,
+            # different ones are successive corrections (all appended, in file order).
+            within = (
+                f"UPDATE _checked AS c SET is_duplicate = true FROM _checked AS f "
+                f"WHERE c.{idc} = f.{idc} AND f.ord < c.ord AND ({same}) "
+                f"AND c.reason IS NULL AND f.reason IS NULL AND NOT f.is_blank AND NOT c.is_blank"
+            )
+        return stored + ";\n" + within
+
+    # --- writing ---------------------------------------------------------------------
+
+    def insert_sql(self, batch_id: int, ingested_at: datetime) -> str:
+        ok = "reason IS NULL AND NOT is_duplicate AND NOT is_blank"
+        ts = f"p_{self.col('time').alias}"
+        if self.kind == "decisions":
+            cue_cols = [c for c in self.columns if c.role == "cue"]
+            team = self._team_expr()
+            names = ", ".join(qi(c.cue) for c in cue_cols)
+            vals = ", ".join(f"p_{c.alias}" for c in cue_cols)
+            return (
+                f"INSERT INTO decisions (decision_id, decided_at, decided_day, decision_maker, team, "
+                f"judgment, batch_id, ingested_at, source_line, {names}) "
+                f"SELECT p_{self.col('id').alias}, {ts}, CAST({ts} AS DATE), "
+                f"p_{self.col('maker').alias}, {team}, p_{self.col('value').alias}, {batch_id}, "
+                f"{lit(ingested_at.isoformat())}::TIMESTAMPTZ, source_line, {vals} "
+                f"FROM _checked WHERE {ok} ORDER BY ord"
+            )
+        return (
+            f"INSERT INTO outcomes (decision_id, observed_at, criterion, batch_id, ingested_at, source_line) "
+            f"SELECT p_{self.col('id').alias}, {ts}, p_{self.col('value').alias}, {batch_id}, "
+            f"{lit(ingested_at.isoformat())}::TIMESTAMPTZ, source_line FROM _checked WHERE {ok} ORDER BY ord"
+        )
+
+    def _team_expr(self) -> str:
+        team = [c for c in self.columns if c.role == "team"]
+        return f"p_{team[0].alias}" if team else "NULL"
+
+    def quarantine_sql(self, batch_id: int, ingested_at: datetime) -> str:
+        return (
+            f"INSERT INTO quarantine SELECT {batch_id}, {lit(self.kind)}, source_line, "
+            f"p_{self.col('id').alias}, reason, message, raw_row, "
+            f"{lit(ingested_at.isoformat())}::TIMESTAMPTZ "
+            f"FROM _checked WHERE reason IS NOT NULL AND NOT is_blank ORDER BY ord"
+        )
+
+    def mark_dirty_sql(self, marked_at: datetime) -> str:
+        ok = "c.reason IS NULL AND NOT c.is_duplicate AND NOT c.is_blank"
+        stamp = f"{lit(marked_at.isoformat())}::TIMESTAMPTZ"
+        if self.kind == "decisions":
+            ts = f"c.p_{self.col('time').alias}"
+            return (
+                f"INSERT INTO dirty_buckets SELECT DISTINCT c.p_{self.col('maker').alias}, "
+                f"CAST({ts} AS DATE), {stamp} FROM _checked c WHERE {ok}"
+            )
+        return (
+            f"INSERT INTO dirty_buckets SELECT DISTINCT d.decision_maker, d.decided_day, {stamp} "
+            f"FROM _checked c JOIN decisions d ON d.decision_id = c.p_{self.col('id').alias} WHERE {ok}"
+        )
+
+
+def build_checks(config: Config, kind: str) -> Checks:
+    cols: list[FileColumn] = []
+    if kind == "decisions":
+        d = config.decisions
+        cols += [
+            FileColumn("f_id", d.id, "id", True),
+            FileColumn("f_time", d.decided_at, "time", True),
+            FileColumn("f_maker", d.decision_maker, "maker", True),
+        ]
+        if d.team:
+            cols.append(FileColumn("f_team", d.team, "team", False))
+        cols.append(FileColumn("f_value", d.judgment, "value", True))
+        for i, name in enumerate(config.cues):
+            cols.append(FileColumn(f"f_cue{i}", config.cue_column(name), "cue", True, cue=name))
+        tz = d.timezone
+    elif kind == "outcomes":
+        o = config.outcomes
+        if o is None:
+            raise FileRejected("the configuration has no [outcomes] section")
+        cols += [
+            FileColumn("f_id", o.id, "id", True),
+            FileColumn("f_time", o.observed_at, "time", True),
+            FileColumn("f_value", o.criterion, "value", True),
+        ]
+        tz = o.timezone or config.decisions.timezone
+    else:
+        raise FileRejected(f"unknown kind {kind!r}")
+    return Checks(config, kind, cols, tz)
+
+
+def reader_sql(config: Config, path: Path, fmt: str, columns: list[FileColumn], present: list[str]) -> str:
+    """SELECT staging the needed columns as text, plus is_blank / is_malformed / raw_line."""
+    p = lit(str(path))
+    if fmt == "jsonl":
+        keys = ", ".join(
+            f"json_extract_string(obj, {lit('$.' + _json_key(c.source))}) AS {c.alias}" for c in columns
+        )
+        return (
+            f"SELECT {keys}, is_blank, is_malformed, raw_line FROM ("
+            f"  SELECT line AS raw_line, (line IS NULL OR trim(line) = '') AS is_blank,"
+            f"    (line IS NOT NULL AND trim(line) <> '' AND NOT coalesce(json_valid(line) AND json_type(line) = 'OBJECT', false)) AS is_malformed,"
+            f"    CASE WHEN json_valid(line) AND json_type(line) = 'OBJECT' THEN line END AS obj"
+            f"  FROM read_csv({p}, columns = {{'line': 'VARCHAR'}}, header = false, delim = '\x1f',"
+            f"    quote = '', escape = '', auto_detect = false))"
+        )
+    sel = []
+    for c in columns:
+        if present and c.source not in present:
+            sel.append(f"NULL::VARCHAR AS {c.alias}")
+        elif fmt == "parquet":
+            sel.append(f"CAST({qi(c.source)} AS VARCHAR) AS {c.alias}")
+        else:
+            sel.append(f"{qi(c.source)} AS {c.alias}")
+    flags = "false AS is_blank, false AS is_malformed, NULL::VARCHAR AS raw_line"
+    if fmt == "parquet":
+        return f"SELECT {', '.join(sel)}, {flags} FROM read_parquet({p})"
+    # Every header column is declared as text so no sniffing is needed; lines with
+    # the wrong number of fields go to the reject table (and then to quarantine).
+    declared = ", ".join(f"{lit(name)}: 'VARCHAR'" for name in present)
+    return (
+        f"SELECT {', '.join(sel)}, {flags} FROM read_csv({p}, header = true, auto_detect = false, "
+        f"columns = {{{declared}}}, delim = {lit(config.ingest.delimiter)}, quote = '\"', "
+        f"escape = '\"', encoding = {lit(config.ingest.encoding)}, "
+        f"store_rejects = true, rejects_table = '_reject_errors', rejects_scan = '_reject_scans')"
+    )
+
+
+def _json_key(name: str) -> str:
+    return '"' + name.replace("\\", "\\\\").replace('"', '\\"') + '"'
