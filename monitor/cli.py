@@ -174,6 +174,70 @@ def format_ingest_summary(summary) -> str:
     return "\n".join(lines)
 
 
+@main.command()
+@click.option("--full", is_flag=True, help="Recompute every bucket and window from scratch.")
+@click.option("--json", "as_json", is_flag=True, help="Print the summary as JSON.")
+@click.pass_obj
+@handles_user_errors
+def refit(obj: Context, full: bool, as_json: bool) -> None:
+    """Bring the rolling window fits up to date (incremental by default)."""
+    from monitor.windows import refit as run_refit
+
+    summary = run_refit(obj.config, full=full)
+    if as_json:
+        print_json(summary.to_json())
+        return
+    click.echo(
+        f"Refit ({summary.mode}): {summary.dirty_buckets} dirty bucket(s), "
+        f"{summary.windows_fitted} window fit(s) written "
+        f"({summary.windows_refit_from_rows} refitted from raw rows) in {summary.seconds:.2f} s."
+    )
+
+
+@main.command()
+@click.option("--decision-maker", "decision_maker", help="Only this decision-maker (or team, or 'all').")
+@click.option("--latest", is_flag=True, help="Only the newest window of each series.")
+@click.option("--scope", type=click.Choice(["decision_maker", "team", "all"]), help="Only this scope.")
+@click.option("--json", "as_json", is_flag=True, help="Print the fits as a JSON array.")
+@click.pass_obj
+@handles_user_errors
+def fits(obj: Context, decision_maker: str | None, latest: bool, scope: str | None, as_json: bool) -> None:
+    """Show stored window fits: weights, consistency, achievement."""
+    from monitor.windows import read_fits
+
+    rows = read_fits(obj.config, decision_maker=decision_maker, latest=latest, scope=scope)
+    if as_json:
+        print_json(rows)
+        return
+    click.echo(format_fits_table(rows))
+
+
+def format_fits_table(rows: list[dict]) -> str:
+    if not rows:
+        return "No fits stored yet: run 'cuewatch refit'."
+    from rich.console import Console
+    from rich.table import Table
+
+    def num(v, fmt="{:.2f}"):
+        return "-" if v is None else fmt.format(v)
+
+    table = Table(title="Window fits (R_s consistency, r_a achievement, G matching)")
+    for col in ("scope", "who", "window", "n", "linked", "R_s", "R_e", "r_a", "G", "C", "strongest cues (std weight)", "note"):
+        table.add_column(col)
+    for r in rows:
+        cues = sorted((c for c in r["cues"] if c["std_weight"] is not None), key=lambda c: -abs(c["std_weight"]))[:3]
+        table.add_row(
+            r["scope"], str(r["decision_maker"]), f"{r['window_start']}..{r['window_end']}",
+            str(r["n_decisions"]), str(r["n_linked"]), num(r["R_s"]), num(r["R_e"]), num(r["r_a"]),
+            num(r["G"]), num(r["C"]),
+            ", ".join(f"{c['cue']} {c['std_weight']:+.2f}" for c in cues),
+            r.get("reason") or "",
+        )
+    console = Console(width=200, record=True, file=open("/dev/null", "w"))
+    console.print(table)
+    return console.export_text()
+
+
 def _register_optional_commands() -> None:
     """Commands owned by later stages register themselves when their module exists."""
     for module in (

@@ -353,7 +353,8 @@ def _write_batch(
     if rejected_lines:
         con.execute(
             "INSERT INTO quarantine SELECT ?, ?, line, NULL, 'malformed_record', "
-            "'the CSV reader could not split this line: ' || error_message, csv_line, ? "
+            "'the CSV reader could not split this line: ' || error_message, "
+            "CAST(to_json(csv_line) AS VARCHAR), ? "
             "FROM _rejects ORDER BY line",
             [batch_id, kind, ingested_at],
         )

@@ -191,8 +191,10 @@ class Checks:
         return o.criterion_values, o.criterion_range, "criterion"
 
     def _raw_json_expr(self, fmt: str) -> str:
+        # raw_row is always JSON text: the record itself, or (when it is not a JSON
+        # object) the line as a JSON string, so json.loads gives back the exact text.
         if fmt == "jsonl":
-            return "raw_line"
+            return "CASE WHEN is_malformed THEN CAST(to_json(raw_line) AS VARCHAR) ELSE raw_line END"
         pairs = ", ".join(f"{lit(c.source)}, {c.alias}" for c in self.columns)
         return f"CAST(json_object({pairs}) AS VARCHAR)"
 
@@ -369,12 +371,15 @@ def reader_sql(config: Config, path: Path, fmt: str, columns: list[FileColumn], 
             f"json_extract_string(obj, {lit('$.' + _json_key(c.source))}) AS {c.alias}" for c in columns
         )
         return (
-            f"SELECT {keys}, is_blank, is_malformed, raw_line FROM ("
-            f"  SELECT line AS raw_line, (line IS NULL OR trim(line) = '') AS is_blank,"
-            f"    (line IS NOT NULL AND trim(line) <> '' AND NOT coalesce(json_valid(line) AND json_type(line) = 'OBJECT', false)) AS is_malformed,"
-            f"    CASE WHEN json_valid(line) AND json_type(line) = 'OBJECT' THEN line END AS obj"
-            f"  FROM read_csv({p}, columns = {{'line': 'VARCHAR'}}, header = false, delim = '\x1f',"
-            f"    quote = '', escape = '', auto_detect = false))"
+            # json_type() raises on text that is not JSON, and AND does not short-circuit
+            # in a vectorised engine, so it is only reached through a CASE on json_valid().
+            f"SELECT {keys}, is_blank, NOT is_blank AND NOT is_object AS is_malformed, raw_line FROM ("
+            f"  SELECT *, CASE WHEN is_object THEN raw_line END AS obj FROM ("
+            f"    SELECT line AS raw_line, (line IS NULL OR trim(line) = '') AS is_blank,"
+            f"      coalesce(CASE WHEN json_valid(line) THEN json_type(line) = 'OBJECT' END, false)"
+            f"        AS is_object"
+            f"    FROM read_csv({p}, columns = {{'line': 'VARCHAR'}}, header = false, delim = '\x1f',"
+            f"      quote = '', escape = '', auto_detect = false)))"
         )
     sel = []
     for c in columns:

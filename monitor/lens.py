@@ -7,6 +7,11 @@ Sufficient statistics for a set of rows z (one row per judgment, columns
 ``z = (x_1 .. x_k, Ys[, Ye])``) are the count ``n``, the mean vector and the
 centred co-moment matrix ``M = sum_i (z_i - mean)(z_i - mean)^T``.  They merge
 exactly with the pairwise update of Chan, Golub & LeVeque (1979).
+
+Contents: the statistics (``Moments``, ``merge``, ``window_sums``); the batched fit
+from statistics (``fit_lens`` -> ``LensFits``, normal equations in correlation form);
+the raw-row fallback for poorly conditioned windows (``fit_lens_rows``, QR) and the
+stack helpers (``stack``, ``replace_rows``).
 """
 
 from __future__ import annotations
@@ -203,7 +208,8 @@ class LensFits:
         return np.stack([self.ci_low, self.ci_high], axis=-1)
 
     def take(self, index: np.ndarray | slice) -> LensFits:
-        """The windows selected by ``index`` (an index array, boolean mask or slice)."""
+        """The windows selected by ``index`` (an index array, boolean mask or slice;
+        a bare integer would drop the window axis, so wrap it in a list)."""
         return LensFits(self.names, **{f: getattr(self, f)[index] for f in _ARRAY_FIELDS})
 
 
@@ -265,21 +271,23 @@ def _cholesky_inverse(corr: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
     the window is flagged singular (and given a unit pivot to keep the stack finite).
     """
     m, k, _ = corr.shape
-    low = np.zeros_like(corr)
+    # Windows on the last axis: each step is then a contiguous vector operation.
+    c = np.ascontiguousarray(np.moveaxis(corr, 0, -1))
+    low = np.zeros_like(c)
     singular = np.zeros(m, dtype=bool)
     for j in range(k):
-        row = low[:, j, :j]
-        piv = corr[:, j, j] - np.einsum("mi,mi->m", row, row)
+        row = low[j, :j]
+        piv = c[j, j] - (row * row).sum(axis=0)
         weak = ~(piv > PIVOT_FLOOR)
         singular |= weak
-        low[:, j, j] = np.sqrt(np.where(weak, 1.0, piv))
-        below = corr[:, j + 1 :, j] - np.einsum("mri,mi->mr", low[:, j + 1 :, :j], row)
-        low[:, j + 1 :, j] = below / low[:, j, j][:, None]
-    low_inv = np.zeros_like(corr)
-    for j in range(k):  # forward substitution, row j of L^-1
-        acc = -np.einsum("mi,mik->mk", low[:, j, :j], low_inv[:, :j, :])
-        acc[:, j] += 1.0
-        low_inv[:, j, :] = acc / low[:, j, j][:, None]
+        low[j, j] = np.sqrt(np.where(weak, 1.0, piv))
+        low[j + 1 :, j] = (c[j + 1 :, j] - (low[j + 1 :, :j] * row).sum(axis=1)) / low[j, j]
+    low_inv = np.zeros_like(c)
+    for j in range(k):  # forward substitution: row j of L^-1
+        acc = -(low[j, :j, None] * low_inv[:j]).sum(axis=0)
+        acc[j] += 1.0
+        low_inv[j] = acc / low[j, j]
+    low_inv = np.moveaxis(low_inv, -1, 0)
     return np.swapaxes(low_inv, 1, 2) @ low_inv, singular
 
 
@@ -353,12 +361,12 @@ def _solve_rows(x: np.ndarray, y: np.ndarray, ok: np.ndarray) -> _Ols:
 
 def _t_figures(b, se, df, alpha):
     """t values, two-sided p-values and interval bounds; df broadcast over cues."""
-    from scipy import stats
+    from scipy import special
 
     dfc = np.where(df > 0, df, np.nan)[:, None]
     t = b / se
-    p = 2.0 * stats.t.sf(np.abs(t), dfc)
-    half = stats.t.ppf(1.0 - alpha / 2.0, dfc) * se
+    p = 2.0 * special.stdtr(dfc, -np.abs(t))
+    half = special.stdtrit(dfc, 1.0 - alpha / 2.0) * se
     return t, p, b - half, b + half
 
 

@@ -66,9 +66,16 @@ def cue_columns(names: Sequence[str], cue: str) -> list[int]:
     return [j for j, name in enumerate(names) if name == cue or name.startswith(f"{cue}=")]
 
 
-def _reasons(reason: Sequence[str | None] | np.ndarray) -> np.ndarray:
-    """A fresh (m,) object array of reasons with None normalised to ""."""
-    return np.array(["" if r is None else str(r) for r in reason], dtype=object)
+def _judge_reasons(fits: LensFits) -> np.ndarray:
+    """A fresh (m,) object array: "" where the judge model is fitted, else why not.
+
+    ``fits.reason`` also carries environment-model reasons (e.g. no linked outcomes)
+    that do not touch the judge weights, so the judge model counts as fitted wherever
+    its residual scale is defined.
+    """
+    fitted = np.isfinite(np.asarray(fits.sigma, float)) & (np.asarray(fits.df_resid) > 0)
+    why = [f"judge model not fitted: {r or 'unknown'}" for r in np.asarray(fits.reason, object)]
+    return np.where(fitted, "", np.array(why, dtype=object)).astype(object)
 
 
 def _batched_solve(a: np.ndarray, b: np.ndarray, ok: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
@@ -131,7 +138,7 @@ def forbidden_cue_decomposition(
     var_f = np.diagonal(s_ff, axis1=1, axis2=2)
     var_p = m_all[:, p_idx, p_idx]
 
-    reason = _reasons(fits.reason)
+    reason = _judge_reasons(fits)
     fitted = reason == ""
     f_est = np.asarray(fits.estimable)[:, f_idx].all(axis=1)
     cue_why = np.asarray(fits.cue_reason, dtype=object)[:, f_idx[0]]
@@ -141,12 +148,15 @@ def forbidden_cue_decomposition(
     # A proxy the fit could not estimate is harmless only if it is constant (delta = 0);
     # otherwise the partial weights are not identified and neither is the split.
     p_est = np.asarray(fits.estimable)[:, p_idx]
-    scale_p = all_rows.n[:, None] * np.maximum(1.0, all_rows.mean[:, p_idx] ** 2)
-    p_const = var_p <= 1e-12 * scale_p
+    # Constant means sd <= 1e-10 |mean| (rounding spread), the rule monitor.lens uses.
+    scale_p = all_rows.n[:, None] * np.maximum(all_rows.mean[:, p_idx] ** 2, 1e-300)
+    p_const = var_p <= 1e-20 * scale_p
     bad_p = fitted & f_est & (~p_est & ~p_const).any(axis=1)
     reason[bad_p] = "a permitted cue is not estimable (collinear), split not identified"
     ok = reason == ""
-    bad_y = ok & ~(var_y > 0)
+    # Same relative rule as a constant cue: a spread of rounding size is no spread.
+    mean_y = all_rows.mean[:, k]
+    bad_y = ok & (var_y <= 1e-20 * all_rows.n * np.maximum(mean_y**2, 1e-300))
     reason[bad_y] = "constant judgment"
     ok = reason == ""
 
@@ -177,6 +187,11 @@ def forbidden_cue_decomposition(
     v_ff = cov[:, f_idx][:, :, f_idx]
     joint_f, joint_p = _wald_f(b_f, v_ff, np.where(ok, df, 0.0))
     ind_joint_f, ind_joint_p = _wald_f(indirect, ind_cov, np.where(ok, df, 0.0))
+    # No proxy path at all (no permitted cue varies with f): nothing to find, p = 1
+    # rather than 0/0.
+    no_path = ok & (np.abs(ind_cov) == 0).all(axis=(1, 2))
+    ind_p = np.where(no_path[:, None], 1.0, ind_p)
+    ind_joint_p = np.where(no_path, 1.0, ind_joint_p)
     return ForbiddenCueDecomposition(
         cue=cue,
         columns=tuple(names[j] for j in f_idx),
@@ -349,7 +364,7 @@ def weight_drift(first: LensFits, second: LensFits) -> WeightDrift:
     v1, v2 = np.asarray(first.cov, float), np.asarray(second.cov, float)
     both = np.asarray(first.estimable) & np.asarray(second.estimable)
     both &= np.isfinite(b1) & np.isfinite(b2)
-    fitted = (_reasons(first.reason) == "") & (_reasons(second.reason) == "")
+    fitted = (_judge_reasons(first) == "") & (_judge_reasons(second) == "")
     both &= fitted[:, None]
     change = np.where(both, b1 - b2, np.nan)
     var = np.diagonal(v1, axis1=1, axis2=2) + np.diagonal(v2, axis1=1, axis2=2)

@@ -19,14 +19,16 @@ from pathlib import Path
 
 import numpy as np
 import pandas as pd
+from scipy.special import ndtr, ndtri
 
-from synthetic_logs.ostwyn_cues import CUE_BOUNDS, draw_cues, environment_logit
+from synthetic_logs.ostwyn_cues import CUE_BOUNDS, ENVIRONMENT, draw_cues, environment_logit
 from synthetic_logs.ostwyn_faults import apply_bad_rows, plan_corrections
 from synthetic_logs.ostwyn_people import build_handlers, noise_scale
 from synthetic_logs.ostwyn_truth import (
     DESIGN_COLUMNS,
     ScenarioTruth,
     load_truth,
+    models_only,
     true_judge_weights,
     write_truth,
 )
@@ -102,8 +104,7 @@ def _decision_rows(rng, truth_parts, start, days, per_day):
     intercept = np.empty((h_count, d_count))
     sigma = np.empty((h_count, d_count))
     cut = np.empty((h_count, d_count))
-    partial = ScenarioTruth(0, start, days, start, start, 0, 0, 0, 0, (), handlers, changes,
-                            {}, {}, (), (), {})  # fmt: skip
+    partial = models_only(handlers, changes)
     for hi, h in enumerate(handlers):
         for di, d in enumerate(work_days):
             p = true_judge_weights(partial, h.handler_id, d)
@@ -114,8 +115,8 @@ def _decision_rows(rng, truth_parts, start, days, per_day):
     # Symmetric truncated normal with a per-handler bound fixed in advance: mean 0,
     # independent of the cues, so OLS stays unbiased (see README "Judge side").
     c = cut[h_idx, d_idx]
-    u = rng.uniform(_ndtr(-c), _ndtr(c))
-    noise = sigma[h_idx, d_idx] * _ndtri(u)
+    u = rng.uniform(ndtr(-c), ndtr(c))
+    noise = sigma[h_idx, d_idx] * ndtri(u)
     priority = np.round(linear + noise, 1)
     if priority.size and (priority.min() < 0 or priority.max() > 100):
         raise AssertionError("planted priority left [0, 100]; cue bounds or weights are wrong")
@@ -141,7 +142,8 @@ def _outcome_rows(rng, decisions, x, environment, horizon):
     fraud = rng.random(n) < p
     lag_log = rng.normal(np.log(_LAG_MEDIAN), 0.6, n)
     lag = np.clip(np.round(np.exp(lag_log)), _LAG_MIN, _LAG_MAX).astype("int64")
-    closed_day = _next_weekday(decisions["_day"].to_numpy() + lag.astype("timedelta64[D]"))
+    decided = decisions["_day"].to_numpy().astype("datetime64[D]")
+    closed_day = _next_weekday(decided + lag.astype("timedelta64[D]"))
     keep = (rng.random(n) < _OUTCOME_SHARE) & (closed_day <= np.datetime64(horizon))
     closed = _working_time(rng, closed_day[keep])
     return pd.DataFrame(
@@ -164,7 +166,8 @@ def _write_by_day(frame: pd.DataFrame, folder: Path, prefix: str, sort_col: str)
     frame = frame.sort_values(["_day", sort_col], kind="stable")
     for day, part in frame.groupby("_day", sort=True):
         name = f"{prefix}_{pd.Timestamp(day).date().isoformat()}.csv"
-        part.drop(columns="_day").to_csv(folder / name, index=False, lineterminator="\n")
+        visible = [c for c in part.columns if not c.startswith("_")]
+        part[visible].to_csv(folder / name, index=False, lineterminator="\n")
 
 
 def generate(
@@ -196,7 +199,7 @@ def generate(
     rng = np.random.default_rng(seed)
     teams, handlers, changes = build_handlers(rng, n_handlers, start, days)
     decisions, x = _decision_rows(rng, (handlers, changes), start, days, claims_per_handler_day)
-    environment = _environment()
+    environment = dict(ENVIRONMENT)
     outcomes = _outcome_rows(rng, decisions, x, environment, outcome_horizon)
     decisions, outcomes, bad_rows = apply_bad_rows(rng, decisions, outcomes, bad_row_rate)
     outcomes, corrections = plan_corrections(rng, outcomes, correction_rate, outcome_horizon)
@@ -204,7 +207,7 @@ def generate(
     _clear(out_dir / "decisions", "decisions")
     _clear(out_dir / "outcomes", "outcomes")
     _write_by_day(decisions, out_dir / "decisions", "decisions", "_order")
-    _write_by_day(outcomes, out_dir / "outcomes", "outcomes", "_order")
+    _write_by_day(outcomes, out_dir / "outcomes", "outcomes", "closed_at")
     last_day = max(_weekdays(start, days))
     truth = ScenarioTruth(
         seed=seed,
@@ -236,12 +239,6 @@ def generate(
     return truth
 
 
-def _environment() -> dict[str, float]:
-    from synthetic_logs.ostwyn_cues import ENVIRONMENT
-
-    return dict(ENVIRONMENT)
-
-
 def day_files(out_dir: Path) -> list[tuple[date, list[Path]]]:
     """Per calendar day, the files that arrived that day, in arrival order.
 
@@ -261,18 +258,6 @@ def day_files(out_dir: Path) -> list[tuple[date, list[Path]]]:
     return [(d, [p for _, p in sorted(by_day[d])]) for d in sorted(by_day)]
 
 
-def _ndtr(v: np.ndarray) -> np.ndarray:
-    from scipy.special import ndtr
-
-    return ndtr(v)
-
-
-def _ndtri(v: np.ndarray) -> np.ndarray:
-    from scipy.special import ndtri
-
-    return ndtri(v)
-
-
 def main(argv: list[str] | None = None) -> int:
     parser = argparse.ArgumentParser(
         prog="python -m synthetic_logs.ostwyn",
@@ -286,18 +271,17 @@ def main(argv: list[str] | None = None) -> int:
     parser.add_argument("--horizon", type=date.fromisoformat, default=date(2026, 11, 30),
                         help="no outcome is observed after this day")  # fmt: skip
     args = parser.parse_args(argv)
-    try:
-        truth = generate(
-            args.out,
-            seed=args.seed,
-            start=args.start,
-            days=args.days,
-            n_handlers=args.handlers,
-            outcome_horizon=args.horizon,
-        )
-    except ValueError as exc:
-        print(f"error: {exc}", file=sys.stderr)
+    if args.handlers < 6 or args.days < 28:
+        print("error: need --handlers >= 6 and --days >= 28", file=sys.stderr)
         return 2
+    truth = generate(
+        args.out,
+        seed=args.seed,
+        start=args.start,
+        days=args.days,
+        n_handlers=args.handlers,
+        outcome_horizon=args.horizon,
+    )
     c = truth.counts
     print(
         f"wrote {c['decision_rows']} decisions in {c['decision_files']} files, "

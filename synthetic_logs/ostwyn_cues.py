@@ -56,10 +56,10 @@ ENVIRONMENT: dict[str, float] = {
 }
 
 
-def _truncated_normal(rng, mean, sd, lo, hi):
-    """Inverse-CDF draw from N(mean, sd^2) restricted to [lo, hi] (arrays broadcast)."""
+def _truncated_normal(rng, mean, sd, lo, hi, n):
+    """Inverse-CDF draw of ``n`` values from N(mean, sd^2) restricted to [lo, hi]."""
     a, b = ndtr((lo - mean) / sd), ndtr((hi - mean) / sd)
-    return mean + sd * ndtri(rng.uniform(a, b))
+    return mean + sd * ndtri(rng.uniform(a, b, n))
 
 
 def _truncated_exponential(rng, mean, hi, n):
@@ -77,29 +77,28 @@ def draw_cues(rng: np.random.Generator, n: int) -> tuple[dict[str, np.ndarray], 
     """
     band = rng.choice(4, size=n, p=AGE_SHARES)
     male = rng.random(n) < MALE_SHARE
-    young = band == 0
 
     # Young drivers run older, cheaper cars (common knowledge; sizes invented). The
     # overall mean, about 8 years, is near the UK average car age (SMMT, from memory).
     vehicle_mean = np.array([12.5, 7.8, 7.0, 7.5])[band]
-    vehicle_age = np.floor(_truncated_normal(rng, vehicle_mean, 3.5, 0.0, 18.999))
+    vehicle_age = np.floor(_truncated_normal(rng, vehicle_mean, 3.5, 0.0, 18.999, n))
     # Cover held with this insurer; shorter for young claimants (invented).
-    policy_mean = np.array([700.0, 1000.0, 1300.0, 1400.0])[band]
+    policy_mean = np.array([1000.0, 1150.0, 1250.0, 1300.0])[band]
     policy_age = np.floor(_truncated_exponential(rng, policy_mean, 3650.999, n))
-    prior_rate = np.array([0.35, 0.25, 0.20, 0.20])[band]  # about 0.08 a year (from memory)
+    prior_rate = np.array([0.28, 0.25, 0.20, 0.20])[band]  # about 0.08 a year (from memory)
     prior = np.minimum(rng.poisson(prior_rate), 4)
     police = rng.random(n) < 0.35  # invented
     witness = rng.random(n) < np.where(police, 0.35, 0.20)  # invented
     # Repair quote over book value: older cars have lower book values (invented sizes).
-    ratio_median = 0.22 * np.exp(0.06 * vehicle_age)
+    ratio_median = 0.3 * np.exp(0.02 * vehicle_age)
     ratio = np.round(
-        np.exp(_truncated_normal(rng, np.log(ratio_median), 0.5, np.log(0.05), np.log(1.5))), 2
+        np.exp(_truncated_normal(rng, np.log(ratio_median), 0.5, np.log(0.05), np.log(1.5), n)), 2
     )
     ratio = np.clip(ratio, 0.05, 1.5)
     # Claim amounts: right-skewed, median £2,800, mean near £3,500; UK average motor
     # claim payouts are a few £1,000s (ABI, from memory). Capped at £15,000 (invented).
     amount = np.round(
-        np.exp(_truncated_normal(rng, np.log(2800.0), 0.8, np.log(150.0), np.log(15000.0))), 2
+        np.exp(_truncated_normal(rng, np.log(2800.0), 0.8, np.log(150.0), np.log(15000.0), n)), 2
     )
     amount = np.clip(amount, 150.0, 15000.0)
     # Most claims are reported within a few days (invented).
@@ -122,7 +121,6 @@ def draw_cues(rng: np.random.Generator, n: int) -> tuple[dict[str, np.ndarray], 
         ]
     ).astype(float)
     assert x.shape[1] == len(DESIGN_COLUMNS)
-    del young
     text = {
         "claim_amount": np.char.mod("%.2f", amount),
         "policy_age_days": policy_age.astype(np.int64).astype(str),

@@ -211,3 +211,12 @@ def load_truth(out_dir: Path) -> ScenarioTruth:
     raw["corrections"] = [_dated(Correction, c) for c in raw["corrections"]]
     raw["cue_bounds"] = {k: (float(v[0]), float(v[1])) for k, v in raw["cue_bounds"].items()}
     return _dated(ScenarioTruth, raw)
+
+
+def models_only(
+    handlers: tuple[HandlerTruth, ...], changes: tuple[PlantedChange, ...]
+) -> ScenarioTruth:
+    """A truth record holding only the judge models, for use while generating."""
+    day = date(2000, 1, 1)
+    return ScenarioTruth(0, day, 0, day, day, len(handlers), 0.0, 0.0, 0.0, (), handlers,
+                         changes, {}, {}, (), (), {})  # fmt: skip

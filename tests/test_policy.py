@@ -208,7 +208,7 @@ def test_degenerate_windows_give_nan_and_reason_without_raising():
     windows = [good, (x_const_f, y_const_f), (x_const_p, y_const_p), tiny, flat]
     dec = _decompose(windows, NUMERIC, "gender")
     assert dec.reason[0] == "" and dec.reason[2] == ""
-    assert "not estimable" in dec.reason[1] and dec.reason[3] == "too few rows"
+    assert "not estimable" in dec.reason[1] and "too few rows" in dec.reason[3]
     assert dec.reason[4] == "constant judgment"
     for w in (1, 3, 4):
         assert np.isnan(dec.disparity[w]).all() and np.isnan(dec.std_direct[w]).all()
@@ -220,8 +220,44 @@ def test_degenerate_windows_give_nan_and_reason_without_raising():
     zero = sm.OLS(y, sm.add_constant(x[:, [1]])).fit()
     np.testing.assert_allclose(dec.direct[2, 0], full.params[2], rtol=1e-9)
     np.testing.assert_allclose(dec.disparity[2, 0], zero.params[1], rtol=1e-9)
+    # No permitted cue at all: no proxy path, the indirect part is nil with p = 1.
+    alone = [(x[:, [1]], y) for x, y in windows[:1]]
+    solo = _decompose(alone, ["gender"], "gender")
+    assert solo.proxies == () and solo.indirect_p[0, 0] == 1.0
+    np.testing.assert_allclose(solo.indirect[0], 0.0, atol=1e-12)
     with pytest.raises(ValueError, match="no design column"):
         _decompose([good], NUMERIC, "religion")
+
+
+def _degenerate_set(rng):
+    windows = [_rows(rng, n, direct=0.4, kind="numeric") for n in (30, 120)]
+    x, y = _rows(rng, 80)
+    windows.append((np.where(np.arange(4) == 1, 5.0, x), y))  # forbidden cue constant
+    x, y = _rows(rng, 80, direct=0.4)
+    windows.append((np.where(np.arange(4) == 3, 1.0, x), y))  # a proxy constant
+    windows.append(_rows(rng, 4))  # too few rows
+    return windows
+
+
+def test_decomposition_from_monitor_lens_fits_agrees_with_statsmodels_fits():
+    from monitor.lens import fit_lens
+
+    windows = _degenerate_set(np.random.default_rng(11))
+    moments = _moments(windows)
+    # The judge fit without outcomes: its window reason says so, the judge part is fine.
+    fits = fit_lens(moments, None, NUMERIC, min_rows=10)
+    ours = forbidden_cue_decomposition(moments, fits, "gender")
+    # Source: the same decomposition fed by statsmodels OLS fits of each window.
+    ref = _decompose(windows, NUMERIC, "gender")
+    np.testing.assert_array_equal(ours.reason == "", [True, True, False, True, False])
+    np.testing.assert_array_equal(ours.reason == "", ref.reason == "")
+    for field in ("disparity", "direct", "direct_ci_low", "indirect", "indirect_se",
+                  "std_indirect", "std_direct", "joint_p", "std_proxy_parts"):  # fmt: skip
+        np.testing.assert_allclose(getattr(ours, field), getattr(ref, field), rtol=1e-8)
+    drift = weight_drift(fits.take(slice(0, 4)), fits.take(slice(1, 5)))
+    # Pairs (i, i + 1): both constant columns drop out of pair 2; pair 3 has no fit.
+    np.testing.assert_array_equal(drift.joint_df, [4, 3, 2, 0])
+    assert np.isnan(drift.joint_stat[3]) and "not fitted" in drift.reason[3]
 
 
 # --- Benjamini-Hochberg ------------------------------------------------------------------
@@ -308,6 +344,7 @@ def _batch_fits(moments, names):
     m = len(df)
     return SimpleNamespace(
         names=tuple(names), n=moments.n, weights=b, std_errors=se, cov=cov, df_resid=df,
+        sigma=np.sqrt(sigma2),
         p_values=2 * stats.t.sf(np.abs(b / se), df[:, None]), ci_low=b - half, ci_high=b + half,
         std_weights=b * np.sqrt(np.diagonal(s_xx, axis1=1, axis2=2) / s_yy[:, None]),
         estimable=np.ones((m, k), bool), cue_reason=np.full((m, k), "", object),
