@@ -238,6 +238,202 @@ def format_fits_table(rows: list[dict]) -> str:
     return console.export_text()
 
 
+@main.command()
+@click.option("--port", type=int, default=8501, show_default=True, help="Port on 127.0.0.1.")
+@click.pass_obj
+@handles_user_errors
+def dashboard(obj: Context, port: int) -> None:
+    """Start the oversight dashboard on 127.0.0.1 (read-only; Ctrl-C stops it)."""
+    from monitor.dashboard_data import launch
+
+    sys.exit(launch(obj.config, port=port))
+
+
+@main.command()
+@click.option("--quarter", required=True, help="Calendar quarter, e.g. 2026Q3.")
+@click.option("--out", "out_dir", required=True, type=click.Path(file_okay=False), help="Output folder.")
+@click.option("--as-of", "as_of", help="Use only rows ingested at or before this time (ISO 8601).")
+@click.option("--format", "formats", default="csv,parquet,xlsx,html", show_default=True,
+              help="Comma-separated: csv, parquet, xlsx, html.")
+@click.option("--include-rows", "include_rows", multiple=True,
+              help="Also export this decision-maker's raw rows for the quarter (privacy warning).")
+@click.option("--compare-as-of", "compare", nargs=2, help="List restatements between two as-of times.")
+@click.option("--json", "as_json", is_flag=True, help="Print what was written as JSON.")
+@click.pass_obj
+@handles_user_errors
+def export(obj: Context, quarter: str, out_dir: str, as_of: str | None, formats: str,
+           include_rows: tuple[str, ...], compare: tuple[str, str] | None, as_json: bool) -> None:
+    """Write the quarterly audit tables (CSV, Parquet, XLSX, HTML) with a manifest."""
+    from monitor.audit import export as run_export
+
+    result = run_export(
+        obj.config, quarter=quarter, out_dir=Path(out_dir), as_of=as_of,
+        formats=[f.strip() for f in formats.split(",") if f.strip()],
+        include_rows=list(include_rows), compare=compare,
+    )
+    if as_json:
+        print_json(result)
+    else:
+        click.echo(result.get("summary", json.dumps(result, default=str)))
+
+
+@main.command()
+@click.option("--force", is_flag=True, help="Re-evaluate even if the fits have not changed.")
+@click.option("--json", "as_json", is_flag=True, help="Print the summary as JSON.")
+@click.pass_obj
+@handles_user_errors
+def assess(obj: Context, force: bool, as_json: bool) -> None:
+    """Evaluate the policy on the fits, update alerts and notify."""
+    from monitor.alerts import assess as run_assess
+
+    summary = run_assess(obj.config, force=force)
+    if as_json:
+        print_json(summary.to_json())
+        return
+    click.echo(format_assess_summary(summary))
+
+
+def format_assess_summary(summary) -> str:
+    if not summary.evaluated:
+        head = "Fits unchanged since the last assessment: nothing re-evaluated."
+    else:
+        head = (
+            f"Assessed {summary.findings} finding rows ({summary.flagged_windows} flagged windows); "
+            f"alerts opened {len(summary.opened)}, resolved {len(summary.resolved)}."
+        )
+    tail = f" Notifications delivered: {summary.delivered}."
+    if summary.delivery_failures:
+        tail += f" Failed (will retry next run): {len(summary.delivery_failures)}; first: {summary.delivery_failures[0]}"
+    return head + tail
+
+
+@main.command()
+@click.option("--state", type=click.Choice(["open", "acknowledged", "resolved"]), help="Only this state.")
+@click.option("--history", is_flag=True, help="Include each alert's state history.")
+@click.option("--json", "as_json", is_flag=True, help="Print the alerts as a JSON array.")
+@click.pass_obj
+@handles_user_errors
+def alerts(obj: Context, state: str | None, history: bool, as_json: bool) -> None:
+    """List alerts (forbidden-cue use, proxies, drift, consistency, achievement)."""
+    from monitor.alerts import list_alerts
+
+    docs = list_alerts(obj.config, state, history=history)
+    if as_json:
+        print_json(docs)
+        return
+    if not docs:
+        click.echo("No alerts.")
+        return
+    for d in docs:
+        ev = d["evidence"]
+        window = ev.get("window") or {}
+        size = ev.get("std_weight")
+        click.echo(
+            f"#{d['id']:<4} {d['state']:<12} {d['kind']:<14} {d['decision_maker']:<10} "
+            f"{d['cue'] or '':<22} window {window.get('start')}..{window.get('end')} "
+            f"size {'-' if size is None else f'{size:+.3f}'} q {ev.get('q_value') if ev.get('q_value') is not None else '-'} "
+            f"n {ev.get('n')}"
+            + (f"  ack by {d['acknowledged_by']}" if d["acknowledged_by"] else "")
+        )
+    click.echo(
+        "Forbidden-cue findings are statistical associations in observational data, not proof of "
+        "intent or of unlawful treatment; consult your compliance and legal advisers."
+    )
+
+
+@main.command()
+@click.argument("alert_id", type=int)
+@click.option("--by", "by", required=True, help="Who acknowledges.")
+@click.option("--note", "note", required=True, help="Why / what was done.")
+@click.option("--json", "as_json", is_flag=True, help="Print the alert as JSON.")
+@click.pass_obj
+@handles_user_errors
+def ack(obj: Context, alert_id: int, by: str, note: str, as_json: bool) -> None:
+    """Acknowledge an open alert with who and a note."""
+    from monitor.alerts import acknowledge
+
+    doc = acknowledge(obj.config, alert_id, by, note)
+    if as_json:
+        print_json(doc)
+    else:
+        click.echo(f"Alert {alert_id} acknowledged by {by}.")
+
+
+@main.command()
+@click.option("--json", "as_json", is_flag=True, help="Print the summary as JSON.")
+@click.pass_obj
+@handles_user_errors
+def nightly(obj: Context, as_json: bool) -> None:
+    """Run ingest -> refit -> assess once (for cron / systemd timers)."""
+    from monitor.nightly import run_nightly
+
+    summary = run_nightly(obj.config)
+    if as_json:
+        print_json(summary.to_json())
+    else:
+        ing, ref = summary.ingest, summary.refit
+        click.echo(
+            f"Nightly run {summary.run_id}: {summary.status}. Ingested {ing.get('accepted', 0)} rows "
+            f"({ing.get('quarantined', 0)} quarantined, {ing.get('duplicates', 0)} duplicates); "
+            f"{ref.get('windows_fitted', 0)} window fit(s) refreshed; "
+            f"alerts opened {len(summary.assess.get('opened', []))}, resolved {len(summary.assess.get('resolved', []))}."
+        )
+    if summary.status != "ok":
+        fail(summary.message)
+
+
+@main.command()
+@click.pass_obj
+@handles_user_errors
+def schedule(obj: Context) -> None:
+    """Run the nightly job on the configured cron schedule until stopped (SIGTERM/Ctrl-C)."""
+    import logging
+
+    from monitor.nightly import run_nightly
+    from monitor.schedule import crontab_to_trigger, next_fire_times, run_schedule
+
+    logging.basicConfig(level=logging.INFO, format="%(asctime)s %(levelname)s %(name)s: %(message)s")
+    cfg = obj.config
+    crontab_to_trigger(cfg.schedule.cron, cfg.schedule.timezone)  # validate before starting
+    from monitor.store import utc_now
+
+    nxt = next_fire_times(cfg.schedule.cron, cfg.schedule.timezone, utc_now(), 1)
+    click.echo(f"Scheduling the nightly job '{cfg.schedule.cron}' ({cfg.schedule.timezone}); next run {nxt[0] if nxt else '?'}.")
+    summary = run_schedule(cfg, lambda: run_nightly(cfg))
+    click.echo(f"Stopped after {summary.runs} run(s), {summary.failures} failed, {summary.skipped} skipped.")
+
+
+@main.command()
+@click.option("--dir", "demo_dir", default="demo_run", show_default=True, type=click.Path(file_okay=False),
+              help="Folder for the scenario, landing folders, store and outputs.")
+@click.option("--no-dashboard", is_flag=True, help="Stop after the pipeline and the audit pack.")
+@click.option("--port", type=int, default=8501, show_default=True, help="Dashboard port on 127.0.0.1.")
+@handles_user_errors
+def demo(demo_dir: str, no_dashboard: bool, port: int) -> None:
+    """The Ostwyn Mutual scenario end to end: generate, nightly runs, alerts, audit, dashboard."""
+    from monitor.demo import run_demo
+
+    result = run_demo(Path(demo_dir).resolve(), say=click.echo)
+    alerts = result["alerts"]
+    click.echo(f"\nStore and config: {result['config']}")
+    click.echo(f"Alerts: {len(alerts)} ({sum(a['state'] != 'resolved' for a in alerts)} not resolved):")
+    for a in alerts:
+        if a["state"] != "resolved" and a["kind"] in ("forbidden_cue", "proxy_use"):
+            click.echo(f"  #{a['id']} {a['kind']} {a['decision_maker']} {a['cue']} since window ending {a['opened_window_end']}")
+    click.echo(
+        "Forbidden-cue findings are statistical associations, not proof of intent or unlawful "
+        "treatment; consult your compliance and legal advisers."
+    )
+    click.echo(f"Try: cuewatch --config {result['config']} fits --latest")
+    if no_dashboard:
+        return
+    from monitor.config import load_config
+    from monitor.dashboard_data import launch
+
+    click.echo(f"Starting the dashboard on http://127.0.0.1:{port} (Ctrl-C stops it) ...")
+    sys.exit(launch(load_config(result["config"]), port=port))
+
+
 def _register_optional_commands() -> None:
     """Commands owned by later stages register themselves when their module exists."""
     for module in (

@@ -143,7 +143,7 @@ class PolicyConfig(_Strict):
     fdr: float = Field(0.05, gt=0, lt=1)
     consecutive_windows: int = Field(2, ge=1)
     proxy_tolerance: float | None = Field(None, gt=0)
-    min_rows: int = Field(40, ge=3)
+    min_rows: int = Field(100, ge=3)
     drift_alpha: float = Field(0.001, gt=0, lt=1)
     drift_min_std_change: float = Field(0.10, ge=0)
     consistency_floor: float | None = Field(0.5, ge=0, le=1)

@@ -21,7 +21,7 @@ from dataclasses import dataclass
 import numpy as np
 
 from monitor.config import Config
-from monitor.lens import Moments
+from monitor.moments import Moments
 from monitor.store import quote_ident as qi
 from monitor.store import sql_literal as lit
 

@@ -16,6 +16,7 @@ from __future__ import annotations
 
 import hashlib
 import hmac
+import http.client
 import json
 import logging
 import os
@@ -30,20 +31,6 @@ from email.utils import formatdate, make_msgid
 from pathlib import Path
 
 from monitor.config import AlertsConfig, EmailConfig, WebhookConfig
-
-__all__ = [
-    "SINK_NAMES",
-    "SinkError",
-    "append_jsonl",
-    "configured_sinks",
-    "deliver",
-    "delivery_id",
-    "describe_finding",
-    "post_webhook",
-    "render_email",
-    "send_email",
-    "signature_header",
-]
 
 log = logging.getLogger(__name__)
 
@@ -331,7 +318,7 @@ def _attempt(
         snippet = _snippet(exc)
         retry = status >= 500 or status in _RETRYABLE_4XX
         return retry, f"answered HTTP {status}{snippet}"
-    except (TimeoutError, urllib.error.URLError, OSError) as exc:
+    except (OSError, http.client.HTTPException) as exc:  # time-outs, refusals, resets
         reason = getattr(exc, "reason", exc)
         return True, f"could not be reached ({reason})"
     if 200 <= status < 300:
@@ -362,31 +349,31 @@ def _canonical_json(document: dict) -> bytes:
 
 # --- wording -------------------------------------------------------------------------
 
-# kind -> (subject label, sentence when opened, with {who} {cue} {window}).
+# kind -> (subject label, sentence when opened, with {whose} {cue} {window}).
 _WORDING = {
     "forbidden_cue": (
         "forbidden cue weight",
-        "{who}'s judgments give material weight to {cue} (forbidden by policy) "
+        "{whose} judgments give material weight to {cue} (forbidden by policy) "
         "in the window {window}.",
     ),
     "proxy_use": (
-        "forbidden cue through proxies",
-        "{who}'s judgments give material weight to {cue} (forbidden by policy) indirectly, "
+        "forbidden cue via proxy cues",
+        "{whose} judgments give material weight to {cue} (forbidden by policy) indirectly, "
         "through permitted cues that track it, in the window {window}.",
     ),
     "drift": (
         "weight drift",
-        "{who}'s weight on {cue} has changed materially between two windows, the later "
+        "{whose} weight on {cue} has changed materially between two windows, the later "
         "one being {window}.",
     ),
     "consistency": (
         "consistency loss",
-        "{who}'s judgments have become less consistent (the judge model's R_s is below "
+        "{whose} judgments have become less consistent (the judge model's R_s is below "
         "the policy floor) in the window {window}.",
     ),
     "achievement": (
         "achievement below floor",
-        "{who}'s judgments predict the outcome less well than policy expects "
+        "{whose} judgments predict the outcome less well than policy expects "
         "(achievement r_a below the floor) in the window {window}.",
     ),
 }
@@ -398,35 +385,51 @@ CAUTION = (
     "compliance and legal advisers and the applicable law before acting on it."
 )
 
-_STANDARD_EVIDENCE = ("window", "std_weight", "interval", "q_value", "n")
+_STANDARD_EVIDENCE = ("window", "std_weight", "interval", "q_value", "n", "figure", "value")
+# What evidence["std_weight"] holds, by kind (the size the policy compared).
+_SIZE_LABEL = {"proxy_use": "standardised indirect weight", "consistency": "R_s",
+               "achievement": "r_a"}  # fmt: skip
 
 
 def describe_finding(alert: dict) -> str:
     """The finding of one alert notification as one plain sentence."""
     kind = str(alert.get("kind", "alert"))
-    who = f"Decision-maker {alert.get('decision_maker', '(unknown)')}"
     cue = alert.get("cue") or "the cue weights as a whole"
     window = _window_text(_evidence(alert).get("window"))
     label, template = _WORDING.get(
-        kind, (kind, "{who}: alert of kind " + kind + " on {cue} in the window {window}.")
+        kind,
+        (kind, "{whose} judgments: alert of kind " + kind + " on {cue} in the window {window}."),
     )
     if alert.get("event") == "resolved":
-        about = f"{label} for {who.lower()}" + (f", {alert['cue']}" if alert.get("cue") else "")
+        about = f"{label}, decision-maker {alert.get('decision_maker', '(unknown)')}"
+        about += f", {alert['cue']}" if alert.get("cue") else ""
         return (
             f"Alert {alert.get('id', '')} is resolved: the condition it reported ({about}) "
             f"has been clear in the recent windows, the latest being {window}."
         )
-    return template.format(who=who, cue=cue, window=window)
+    return template.format(whose=_whose(alert), cue=cue, window=window)
+
+
+def _whose(alert: dict) -> str:
+    name = alert.get("decision_maker", "(unknown)")
+    scope = alert.get("scope", "decision_maker")
+    if scope == "team":
+        return f"Team {name}'s"
+    if scope == "all":
+        return "All decision-makers' (pooled)"
+    return f"Decision-maker {name}'s"
 
 
 def email_subject(alert: dict) -> str:
+    """``[cuewatch] (resolved: )<label>: <decision-maker>(, <cue>) (alert <id>)``."""
     label = _WORDING.get(str(alert.get("kind")), (str(alert.get("kind", "alert")),))[0]
     prefix = "resolved: " if alert.get("event") == "resolved" else ""
-    cue = f", {alert['cue']}" if alert.get("cue") else ""
-    return f"[cuewatch] {prefix}{label}: {alert.get('decision_maker', '?')}{cue} (alert {alert.get('id', '?')})"
+    who = str(alert.get("decision_maker", "?")) + (f", {alert['cue']}" if alert.get("cue") else "")
+    return f"[cuewatch] {prefix}{label}: {who} (alert {alert.get('id', '?')})"
 
 
 def email_body(alert: dict, *, ack_hint: str) -> str:
+    """Finding, figures (kind-specific evidence too), alert fields, caution, how to ack."""
     ev = _evidence(alert)
     interval = ev.get("interval")
     lines = [describe_finding(alert), "", "Figures:"]
@@ -438,10 +441,14 @@ def email_body(alert: dict, *, ack_hint: str) -> str:
             if isinstance(interval, list | tuple) and len(interval) == 2
             else "not reported"
         )
-        lines.append(f"  standardised weight: {_num(ev.get('std_weight'))} (interval {span})")
+        label = _SIZE_LABEL.get(str(alert.get("kind")), "standardised weight")
+        if alert.get("kind") in ("consistency", "achievement"):
+            label = str(ev.get("figure") or label)
+        lines.append(f"  {label}: {_num(ev.get('std_weight'))} (interval {span})")
     if "q_value" in ev:
         lines.append(f"  q-value (Benjamini-Hochberg): {_num(ev['q_value'])}")
-    lines += [f"  {k}: {_num(v)}" for k, v in sorted(ev.items()) if k not in _STANDARD_EVIDENCE]
+    extra = sorted((k, v) for k, v in ev.items() if k not in _STANDARD_EVIDENCE and v is not None)
+    lines += [f"  {k}: {_num(v)}" for k, v in extra]
     lines += ["", "Alert:"]
     for key in ("id", "kind", "state", "opened_at", "resolved_at", "acknowledged_by", "note"):
         if alert.get(key) not in (None, ""):
@@ -466,9 +473,11 @@ def _window_text(window: object) -> str:
 def _num(value: object) -> str:
     if value is None:
         return "not reported"
-    if isinstance(value, bool) or not isinstance(value, int | float):
-        return str(value)
-    if isinstance(value, int):
+    if isinstance(value, dict):  # e.g. per-proxy figures
+        return ", ".join(f"{k} {_num(v)}" for k, v in value.items())
+    if isinstance(value, list | tuple):
+        return "[" + ", ".join(_num(v) for v in value) + "]"
+    if isinstance(value, bool | int) or not isinstance(value, float):
         return str(value)
     if value == 0 or abs(value) >= 0.001:
         return f"{value:.3f}"

@@ -29,6 +29,7 @@ from monitor import __version__
 from monitor.config import Config
 
 SCHEMA_VERSION_TABLE = "schema_migrations"
+THREADS_ENV = "CUEWATCH_DUCKDB_THREADS"
 
 
 class StoreBusy(Exception):
@@ -299,6 +300,14 @@ class Store:
         # Timestamps without an offset in the input are read in the decisions' zone;
         # the bucket day of a decision is its calendar day there.
         con.execute(f"SET TimeZone = {sql_literal(self.config.decisions.timezone)}")
+        con.execute("SET enable_progress_bar = false")
+        # Operators (and the thread-independence tests) may pin DuckDB's worker count;
+        # the statistics must not depend on it beyond rounding.
+        threads = os.environ.get(THREADS_ENV, "").strip()
+        if threads:
+            if not threads.isdigit() or int(threads) < 1:
+                raise StoreMismatch(f"{THREADS_ENV} must be a positive integer, not {threads!r}.")
+            con.execute(f"SET threads = {int(threads)}")
 
     @contextlib.contextmanager
     def writer(self, timeout_s: float | None = None) -> Iterator[duckdb.DuckDBPyConnection]:

@@ -25,7 +25,8 @@ import pandas as pd
 
 from monitor import __version__
 from monitor.config import Config
-from monitor.lens import LensFits, Moments, fit_lens, fit_lens_rows, replace_rows, stack, window_sums
+from monitor.lens import LensFits, fit_lens, fit_lens_rows, replace_rows, stack
+from monitor.moments import Moments, window_sums
 from monitor.moments_sql import MomentLayout, design_expressions, moments_sql
 from monitor.store import Store, quote_ident, sql_literal, utc_now
 

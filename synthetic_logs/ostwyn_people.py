@@ -184,7 +184,9 @@ def _seat(handler: HandlerTruth, changes, start: date, days: int) -> HandlerTrut
     return replace(handler, intercept=round(50.0 - (lo + hi) / 2.0, 4), noise_bound=round(bound, 4))
 
 
-def build_handlers(rng: np.random.Generator, n: int, start: date, days: int):
+def build_handlers(
+    rng: np.random.Generator, n: int, start: date, days: int
+) -> tuple[tuple[str, ...], tuple[HandlerTruth, ...], tuple[PlantedChange, ...]]:
     """Draw ``n`` handlers in three teams and plan the changes.
 
     Returns (teams, handlers, changes). Seats: the first team's first handler loses

@@ -252,3 +252,39 @@ def config_path(tmp_path: Path) -> Path:
     proc = run_cli(cfg, "init")
     assert proc.returncode == 0, text(proc)
     return cfg
+
+
+def write_large_decisions_csv(path: Path, n: int, *, bad_every: int = 0) -> Path:
+    """Write ``n`` decision rows for the small configuration with DuckDB's COPY (fast).
+
+    Ids are c0000000..; every ``bad_every``-th row (if > 0) has a judgment of 'x' and
+    is quarantined.  Returns the path.
+    """
+    path.parent.mkdir(parents=True, exist_ok=True)
+    score = (
+        f"CASE WHEN {bad_every} > 0 AND i % {bad_every} = 0 THEN 'x' ELSE CAST(i % 100 AS VARCHAR) END"
+        if bad_every
+        else "CAST(i % 100 AS VARCHAR)"
+    )
+    con = duckdb.connect()
+    try:
+        con.execute(
+            f"""COPY (
+                SELECT 'c' || lpad(CAST(i AS VARCHAR), 7, '0') AS case_id,
+                       strftime(TIMESTAMP '2024-01-01' + to_seconds(i % 8000000), '%Y-%m-%d %H:%M:%S')
+                           AS decided,
+                       'h' || CAST(i % 50 AS VARCHAR) AS handler,
+                       't' || CAST(i % 5 AS VARCHAR) AS team,
+                       {score} AS score,
+                       CAST(round((i * 37) % 100000 / 100.0, 2) AS VARCHAR) AS amount,
+                       CAST(i % 365 AS VARCHAR) AS age_days,
+                       CASE WHEN i % 3 = 0 THEN 'N' ELSE 'Y' END AS report,
+                       CAST(i % 2 AS VARCHAR) AS witness,
+                       CASE WHEN i % 4 = 0 THEN 'south' ELSE 'north' END AS region,
+                       ['a', 'b', 'c'][1 + i % 3] AS band
+                FROM range({int(n)}) t(i)
+            ) TO '{path}' (HEADER, DELIMITER ',')"""
+        )
+    finally:
+        con.close()
+    return path

@@ -255,3 +255,12 @@ def test_day_files_lists_each_days_arrivals_decisions_first(scenario):
     for day, paths in listing:
         assert all(day.isoformat() in p.name for p in paths)
         assert [p.parent.name for p in paths] == sorted(p.parent.name for p in paths)
+
+
+def test_committed_sample_is_what_the_generator_writes(tmp_path):
+    # The arguments README.md gives for regenerating synthetic_logs/sample.
+    sample = Path(__file__).resolve().parents[1] / "synthetic_logs" / "sample"
+    generate(tmp_path, seed=7, days=28, n_handlers=6, outcome_horizon=date(2025, 3, 31))
+    files = sorted(p.relative_to(sample) for p in sample.rglob("*") if p.is_file())
+    assert files == sorted(p.relative_to(tmp_path) for p in tmp_path.rglob("*") if p.is_file())
+    assert all((sample / f).read_bytes() == (tmp_path / f).read_bytes() for f in files)

@@ -95,13 +95,40 @@ def test_resolved_event_says_resolved():
     resolved = {**ALERT, "event": "resolved", "state": "resolved", "resolved_at": "2026-08-01"}
     assert "resolved" in render_email(resolved, ack_hint=ACK)["Subject"]
     assert describe_finding(resolved).startswith("Alert 17 is resolved")
+    assert "H07" in describe_finding(resolved)
+
+
+@pytest.mark.parametrize(
+    ("kind", "cue", "phrase"),
+    [
+        ("proxy_use", "claimant_gender", "indirectly"),
+        ("drift", "claim_amount", "weight on claim_amount has changed"),
+        ("consistency", None, "less consistent"),
+        ("achievement", None, "predict the outcome less well"),
+    ],
+)
+def test_every_kind_has_a_sentence(kind, cue, phrase):
+    alert = {**ALERT, "kind": kind, "cue": cue}
+    sentence = describe_finding(alert)
+    assert phrase in sentence and "H07" in sentence and "2026-04-01..2026-06-29" in sentence
+    assert sentence.replace("..", "~").count(".") == 1 and sentence.endswith(".")
+    assert kind.split("_")[0] in render_email(alert, ack_hint=ACK)["Subject"].lower()
+
+
+def test_scope_and_kind_specific_figures():
+    team = {**ALERT, "scope": "team", "decision_maker": "Motor"}
+    assert describe_finding(team).startswith("Team Motor's judgments")
+    pooled = describe_finding({**ALERT, "scope": "all", "decision_maker": "all"})
+    assert pooled.startswith("All decision-makers' (pooled) judgments")
+    ev = {**ALERT["evidence"], "std_weight": 0.41, "figure": "R_s", "value": 0.41, "level": None}
+    body = render_email({**ALERT, "kind": "consistency", "cue": None, "evidence": ev},
+                        ack_hint=ACK).get_content()  # fmt: skip
+    assert "R_s: 0.410" in body and "standardised weight" not in body and "level" not in body
 
 
 def test_configured_sinks(tmp_path):
     assert configured_sinks(AlertsConfig()) == []
-    cfg = AlertsConfig(
-        file=tmp_path / "a.jsonl", webhook=WebhookConfig(url="http://127.0.0.1:9/x")
-    )
+    cfg = AlertsConfig(file=tmp_path / "a.jsonl", webhook=WebhookConfig(url="http://127.0.0.1:9/x"))
     assert configured_sinks(cfg) == ["file", "webhook"]
     with pytest.raises(SinkError, match="'email' is not configured"):
         deliver(cfg, ALERT, "email")
@@ -145,7 +172,8 @@ class _Inbox:
     def authenticate(self, server, session, envelope, mechanism, auth_data):
         self.logins.append((auth_data.login, auth_data.password))
         ok = auth_data.login == b"alerts" and auth_data.password == b"s3cret"
-        return AuthResult(success=ok)
+        # handled=False: let aiosmtpd answer 535 itself (it stays silent otherwise).
+        return AuthResult(success=ok, handled=False)
 
 
 @pytest.fixture(scope="module")
@@ -206,9 +234,7 @@ def test_email_starttls_with_auth_from_env(tls_files, monkeypatch):
     server_ctx.load_cert_chain(cert, key)
     inbox = _Inbox()
     ctl = _smtp(inbox, tls_context=server_ctx, require_starttls=True,
-                authenticator=inbox.authenticate, auth_require_tls=True,
-                # aiosmtpd 1.4 stalls on smtplib's LOGIN fallback after a refused PLAIN.
-                auth_exclude_mechanism=["LOGIN"])  # fmt: skip
+                authenticator=inbox.authenticate, auth_require_tls=True)  # fmt: skip
     monkeypatch.setenv("CW_SMTP_USER", "alerts")
     monkeypatch.setenv("CW_SMTP_PASS", "s3cret")
     client_ctx = ssl.create_default_context(cafile=str(cert))
@@ -368,3 +394,10 @@ def test_webhook_missing_secret_variable_is_named(monkeypatch):
     cfg = WebhookConfig(url="http://127.0.0.1:9/x", secret_env="CW_HOOK_SECRET_MISSING")
     with pytest.raises(SinkError, match="CW_HOOK_SECRET_MISSING"):
         post_webhook(cfg, ALERT, sleep=lambda s: None)
+
+
+def test_webhook_redirect_is_not_followed():
+    with _Receiver([(307, 0)]) as rx:
+        with pytest.raises(SinkError, match="HTTP 307"):
+            post_webhook(WebhookConfig(url=rx.url, retries=2), ALERT, sleep=lambda s: None)
+    assert len(rx.requests) == 1

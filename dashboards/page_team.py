@@ -1,0 +1,64 @@
+"""Team at a glance: every decision-maker's latest window, who is flagged and why."""
+
+from __future__ import annotations
+
+import streamlit as st
+
+from dashboards import charts, ui
+from monitor import dashboard_data as dd
+
+st.title("Team at a glance")
+span = ui.load(dd.window_range)
+if span is None:
+    st.info("No window fits yet: run `cuewatch refit` (or the nightly job).")
+    st.stop()
+
+left, right = st.columns([1, 2])
+team_names = ui.load(dd.teams)
+team = left.selectbox("Team", ["All teams", *team_names], key="team")
+period = right.slider(
+    "Period (window ends)", min_value=span[0], max_value=span[1], value=span, key="period"
+)
+chosen_team = None if team == "All teams" else team
+view = ui.load(dd.overview, tuple(period), team=chosen_team)
+rows = view.rows
+
+st.subheader("Flagged now")
+if view.flagged.empty:
+    st.success("No decision-maker has an open or acknowledged alert in this view.")
+else:
+    st.markdown(
+        "\n".join(
+            f"- **{r.decision_maker}** ({r.team}): {r.why}" for r in view.flagged.itertuples()
+        )
+    )
+
+people = rows[rows["scope"] == "decision_maker"]
+if not people.empty:
+    st.altair_chart(charts.overview_chart(rows), width="stretch")
+
+st.subheader("Latest window per decision-maker, team and overall")
+table = rows.assign(
+    who=rows["decision_maker"],
+    level=rows["scope"].map({"decision_maker": "person", "team": "team", "all": "overall"}),
+)[["level", "who", "team", "window_end", "n_decisions", "R_s", "r_a", "n_linked",
+   "open_alerts", "why", "R_s_trend"]]  # fmt: skip
+st.dataframe(
+    table,
+    hide_index=True,
+    width="stretch",
+    column_config={
+        "window_end": st.column_config.DateColumn("window end"),
+        "n_decisions": st.column_config.NumberColumn("n", help="decisions in the window"),
+        "R_s": st.column_config.NumberColumn("R_s", format="%.2f", help="consistency"),
+        "r_a": st.column_config.NumberColumn("r_a", format="%.2f", help="achievement"),
+        "n_linked": st.column_config.NumberColumn("linked", help="decisions with an outcome"),
+        "open_alerts": st.column_config.NumberColumn("open alerts"),
+        "why": st.column_config.TextColumn("why"),
+        "R_s_trend": st.column_config.LineChartColumn("R_s over the period", y_min=0, y_max=1),
+    },
+)
+st.caption(
+    "R_s: how well a linear model of the person's own cue use reproduces their judgments. "
+    "r_a: correlation of judgments with the outcomes that have come in (linked rows only)."
+)

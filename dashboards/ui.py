@@ -1,0 +1,97 @@
+"""Shared page plumbing: which configuration, cached reads, a busy store, the caution box.
+
+Reads go through ``load``: one short-lived read-only connection per call (inside
+``monitor.dashboard_data``), cached for a short time under a key that includes the
+store file's modification time, so a nightly write shows up on the next rerun and no
+connection is ever held across reruns.
+"""
+
+from __future__ import annotations
+
+import argparse
+import os
+import sys
+import time
+from collections.abc import Callable
+from typing import Any
+
+import streamlit as st
+
+from monitor import dashboard_data as dd
+from monitor.config import ENV_VAR, Config, ConfigError, load_config
+from monitor.store import StoreBusy, StoreMismatch
+
+CACHE_TTL_S = 30
+BUSY_RETRIES = 3
+
+
+def config_path() -> str | None:
+    """``--config FILE`` after the ``--`` of ``streamlit run``, else $CUEWATCH_CONFIG."""
+    parser = argparse.ArgumentParser(add_help=False)
+    parser.add_argument("--config")
+    known, _ = parser.parse_known_args(sys.argv[1:])
+    return known.config or os.environ.get(ENV_VAR)
+
+
+@st.cache_resource(show_spinner=False)
+def _load_config(path: str | None) -> Config:
+    return load_config(path)
+
+
+def config() -> Config:
+    """The dashboard's configuration; stops the page with a one-line reason if bad."""
+    try:
+        return _load_config(config_path())
+    except ConfigError as exc:
+        st.error(f"Cannot read the configuration: {exc}")
+        st.stop()
+        raise  # unreachable: st.stop ends the script run
+
+
+@st.cache_data(ttl=CACHE_TTL_S, show_spinner=False, max_entries=256)
+def _cached(fn_name: str, path: str | None, stamp: tuple, args: tuple, kwargs: tuple) -> Any:
+    # ``stamp`` is only part of the key: a new store mtime means a fresh read.
+    return getattr(dd, fn_name)(_load_config(path), *args, **dict(kwargs))
+
+
+def load(fn: Callable[..., Any], *args: Any, **kwargs: Any) -> Any:
+    """Call ``dashboard_data.<fn>(config, *args, **kwargs)`` through the cache.
+
+    While the nightly job holds the store the page says so and retries a few times;
+    if it is still busy the page shows a retry button and stops (never an exception).
+    """
+    cfg = config()
+    notice = st.empty()
+    for attempt in range(BUSY_RETRIES):
+        try:
+            value = _cached(
+                fn.__name__, config_path(), dd.store_stamp(cfg), args, tuple(sorted(kwargs.items()))
+            )
+            notice.empty()
+            return value
+        except StoreBusy:
+            notice.info(
+                "The store is busy (the nightly job is writing). "
+                f"Retrying ({attempt + 1}/{BUSY_RETRIES})…"
+            )
+            time.sleep(1.0 + attempt)
+        except StoreMismatch as exc:
+            notice.empty()
+            st.warning(f"No data to show yet: {exc}")
+            st.stop()
+    notice.warning("The store is still busy (the nightly job is writing). Try again in a minute.")
+    st.button("Try again", key=f"retry-{fn.__name__}")
+    st.stop()
+
+
+def caution() -> None:
+    """The caution every forbidden-cue view carries."""
+    st.warning(dd.CAUTION, icon=":material/balance:")
+
+
+def number(v: Any, digits: int = 2) -> str:
+    try:
+        f = float(v)
+    except (TypeError, ValueError):
+        return "–"
+    return "–" if f != f else f"{f:.{digits}f}"

@@ -1,0 +1,495 @@
+"""Everything the oversight dashboard reads, shaped as plain DataFrames and dataclasses.
+
+Each function opens one short-lived read-only connection (``Store.reader``), runs its
+queries and closes it, so the nightly writer is never kept waiting for long.  None of
+them imports Streamlit: the pages only lay out what these return, and the tests call
+them directly.  A busy store raises ``monitor.store.StoreBusy`` (the caller decides
+how long to retry); a missing store raises ``StoreMismatch``.
+"""
+
+from __future__ import annotations
+
+import io
+import subprocess
+import sys
+import tempfile
+import zipfile
+from dataclasses import dataclass
+from datetime import date
+from pathlib import Path
+
+import numpy as np
+import pandas as pd
+
+from monitor.config import Config
+from monitor.store import Store, StoreBusy
+
+# Read retries are kept short: the page tells the reviewer and retries itself rather
+# than sitting inside one connect call for the store's full read_retry_s.
+READ_RETRY_S = 2.0
+
+CAUTION = (
+    "A weight on a forbidden cue is a statistical association in observational data, "
+    "not proof of intent or of unlawful treatment. Cues the model does not see, outcomes "
+    "recorded only for some cases, small samples and chance all matter. Read these figures "
+    "with their sample sizes, and defer to your compliance and legal advisers and the "
+    "law that applies where you operate."
+)
+LENS_FIGURES = {
+    "r_a": "achievement r_a",
+    "R_s": "consistency R_s",
+    "R_e": "environment predictability R_e",
+    "G": "matching G",
+    "C": "unmodelled agreement C",
+    "model_of_judge_r": "model of the judge G·R_e",
+}
+OPEN_STATES = ("open", "acknowledged")
+
+
+def store_stamp(config: Config) -> tuple[float, float]:
+    """Modification times of the store file and its write-ahead log (0 when absent);
+    a cache key that changes whenever a writer has committed something."""
+    path = Path(config.store.path)
+    wal = path.with_name(path.name + ".wal")
+    return tuple(p.stat().st_mtime if p.exists() else 0.0 for p in (path, wal))  # type: ignore[return-value]
+
+
+def _query(config: Config, *queries: tuple[str, list]) -> list[pd.DataFrame]:
+    """Run the queries on one read-only connection, then close it."""
+    store = Store(config)
+    with store.reader(retry_s=min(READ_RETRY_S, config.store.read_retry_s)) as con:
+        return [con.execute(sql, params).df() for sql, params in queries]
+
+
+def forbidden_design_columns(config: Config) -> set[str]:
+    """Design columns ("cue" or "cue=level") that belong to a forbidden cue."""
+    groups = config.design_groups()
+    names = config.design_columns()
+    return {names[i] for cue in config.policy.forbidden for i in groups[cue]}
+
+
+# --- overview ---------------------------------------------------------------------------
+
+
+@dataclass(frozen=True)
+class Overview:
+    """The latest window of every series within a period.
+
+    ``rows``: one row per series (scope decision_maker, team, all) with n_decisions,
+    n_linked, R_s, R_e, r_a, G, C, model_of_judge_r, window_start/end, R_s_trend (the
+    series' R_s over the period's windows, oldest first), open_alerts and why (the
+    open or acknowledged alerts as "kind cue" text).  ``flagged``: decision-makers with
+    an open or acknowledged alert and why, most alerts first.
+    """
+
+    rows: pd.DataFrame
+    flagged: pd.DataFrame
+    period: tuple[date, date]
+
+
+def window_range(config: Config) -> tuple[date, date] | None:
+    """First and last stored window end, or None before the first refit."""
+    (df,) = _query(config, ("SELECT min(window_end) AS lo, max(window_end) AS hi FROM fits", []))
+    if df.empty or pd.isna(df["lo"].iloc[0]):
+        return None
+    return pd.Timestamp(df["lo"].iloc[0]).date(), pd.Timestamp(df["hi"].iloc[0]).date()
+
+
+def teams(config: Config) -> list[str]:
+    (df,) = _query(
+        config,
+        ("SELECT DISTINCT decision_maker FROM fits WHERE scope = 'team' ORDER BY 1", []),
+    )
+    return df["decision_maker"].tolist()
+
+
+def decision_makers(config: Config, team: str | None = None) -> pd.DataFrame:
+    """decision_maker, team for every decision-maker with stored fits (of ``team``)."""
+    sql = "SELECT DISTINCT decision_maker, team FROM fits WHERE scope = 'decision_maker'"
+    params: list = []
+    if team:
+        sql, params = sql + " AND team = ?", [team]
+    (df,) = _query(config, (sql + " ORDER BY decision_maker", params))
+    return df
+
+
+def overview(config: Config, period: tuple[date, date], team: str | None = None) -> Overview:
+    """Read only the fits and alerts tables (never raw decisions), so its cost does not
+    grow with the number of decisions stored."""
+    lo, hi = period
+    series_filter = "TRUE"
+    params: list = [lo, hi]
+    if team:
+        series_filter = (
+            "(scope = 'all' OR (scope = 'team' AND decision_maker = ?) "
+            "OR (scope = 'decision_maker' AND team = ?))"
+        )
+        params += [team, team]
+    fits_sql = f"""
+        WITH f AS (
+            SELECT scope, decision_maker, team, window_start, window_end, n_decisions, n_linked,
+                   R_s, R_e, r_a, G, C, model_of_judge_r, reason
+            FROM fits WHERE window_end BETWEEN ? AND ? AND {series_filter}),
+        trend AS (
+            SELECT scope, decision_maker, list(coalesce(R_s, 'NaN'::DOUBLE) ORDER BY window_end) AS R_s_trend
+            FROM f GROUP BY scope, decision_maker)
+        SELECT f.*, trend.R_s_trend FROM f JOIN trend USING (scope, decision_maker)
+        QUALIFY row_number() OVER (PARTITION BY f.scope, f.decision_maker
+                                   ORDER BY f.window_end DESC) = 1"""
+    alerts_sql = """
+        SELECT scope, decision_maker, count(*) AS open_alerts,
+               string_agg(kind || coalesce(' ' || cue, ''), '; ' ORDER BY alert_id) AS why
+        FROM alerts WHERE state IN ('open', 'acknowledged') GROUP BY scope, decision_maker"""
+    fits, alerts = _query(config, (fits_sql, params), (alerts_sql, []))
+    rows = fits.merge(alerts, on=["scope", "decision_maker"], how="left")
+    rows["open_alerts"] = rows["open_alerts"].fillna(0).astype(int)
+    rows["why"] = rows["why"].fillna("")
+    rows["R_s_trend"] = rows["R_s_trend"].apply(lambda v: [float(x) for x in v])
+    order = {"decision_maker": 0, "team": 1, "all": 2}
+    rows = rows.sort_values(
+        ["scope", "decision_maker"], key=lambda s: s.map(order) if s.name == "scope" else s
+    ).reset_index(drop=True)
+    people = rows[(rows["scope"] == "decision_maker") & (rows["open_alerts"] > 0)]
+    flagged = people[["decision_maker", "team", "open_alerts", "why"]].sort_values(
+        ["open_alerts", "decision_maker"], ascending=[False, True]
+    )
+    return Overview(rows=rows, flagged=flagged.reset_index(drop=True), period=(lo, hi))
+
+
+# --- one decision-maker ---------------------------------------------------------------------
+
+
+@dataclass(frozen=True)
+class PersonHistory:
+    """One decision-maker's windows.
+
+    ``weights``: long frame, one row per (window_end, cue) with weight, std_weight,
+    std_ci_low/std_ci_high (the weight's t interval rescaled by the same factor as the
+    standardised weight, sd(x)/sd(Ys)), estimable, reason, forbidden and team_median
+    (median standardised weight of the same cue over the team's decision-makers in that
+    window; NaN without a team).  ``lens``: one row per (window_end, figure) with value,
+    n_decisions and n_linked.  ``alert_spans``: alert_id, kind, cue, state, start, end
+    (window ends; an unresolved alert runs to the last window).  ``latest``: the
+    newest window's rows of ``weights``.
+    """
+
+    decision_maker: str
+    team: str | None
+    weights: pd.DataFrame
+    lens: pd.DataFrame
+    alert_spans: pd.DataFrame
+    latest: pd.DataFrame
+
+
+def person_history(config: Config, decision_maker: str) -> PersonHistory:
+    weights_sql = """
+        SELECT c.window_end, c.cue_index, c.cue, c.weight, c.std_error, c.ci_low, c.ci_high,
+               c.std_weight, c.p_value, c.utilization_r, c.validity_r, c.estimable, c.reason,
+               f.team, f.n_decisions
+        FROM cue_weights c JOIN fits f USING (scope, decision_maker, window_end)
+        WHERE c.scope = 'decision_maker' AND c.decision_maker = ?
+        ORDER BY c.window_end, c.cue_index"""
+    median_sql = """
+        SELECT c.window_end, c.cue, median(c.std_weight) AS team_median
+        FROM cue_weights c JOIN fits f USING (scope, decision_maker, window_end)
+        WHERE c.scope = 'decision_maker' AND f.team = (
+            SELECT any_value(team) FROM fits
+            WHERE scope = 'decision_maker' AND decision_maker = ?)
+        GROUP BY c.window_end, c.cue"""
+    lens_sql = """
+        SELECT window_end, n_decisions, n_linked, R_s, R_e, r_a, G, C, model_of_judge_r
+        FROM fits WHERE scope = 'decision_maker' AND decision_maker = ? ORDER BY window_end"""
+    alerts_sql = """
+        SELECT alert_id, kind, cue, state, opened_window_end AS start,
+               resolved_window_end AS "end"
+        FROM alerts WHERE scope = 'decision_maker' AND decision_maker = ? ORDER BY alert_id"""
+    w, med, lens, spans = _query(
+        config,
+        (weights_sql, [decision_maker]),
+        (median_sql, [decision_maker]),
+        (lens_sql, [decision_maker]),
+        (alerts_sql, [decision_maker]),
+    )
+    team = None if w.empty or pd.isna(w["team"].iloc[0]) else str(w["team"].iloc[0])
+    with np.errstate(divide="ignore", invalid="ignore"):
+        scale = np.where(w["weight"].to_numpy(float) != 0, w["std_weight"] / w["weight"], np.nan)
+    w["std_ci_low"] = w["ci_low"] * scale
+    w["std_ci_high"] = w["ci_high"] * scale
+    w["forbidden"] = w["cue"].isin(forbidden_design_columns(config))
+    w = w.merge(med, on=["window_end", "cue"], how="left")
+    long = lens.melt(
+        id_vars=["window_end", "n_decisions", "n_linked"],
+        value_vars=list(LENS_FIGURES),
+        var_name="figure",
+        value_name="value",
+    )
+    last_end = lens["window_end"].max() if len(lens) else pd.NaT
+    spans["end"] = spans["end"].fillna(last_end)
+    latest = w[w["window_end"] == w["window_end"].max()].reset_index(drop=True)
+    return PersonHistory(decision_maker, team, w.drop(columns=["team"]), long, spans, latest)
+
+
+# --- forbidden cues ------------------------------------------------------------------------
+
+
+@dataclass(frozen=True)
+class ForbiddenEvidence:
+    """Latest-window forbidden-cue decomposition per decision-maker and cue level.
+
+    ``rows``: decision_maker, team, cue, level, window_start, window_end, n, disparity,
+    direct, indirect (judgment units), std_disparity, std_weight (direct, standardised)
+    with ci_low/ci_high, std_indirect with indirect_ci_low/high, q_direct, q_indirect,
+    flagged_direct, flagged_indirect, assessable, reason.  ``proxies``: the per-proxy
+    parts of the indirect effect for the same windows (decision_maker, cue, level,
+    proxy_cue, part, std_part).
+    """
+
+    rows: pd.DataFrame
+    proxies: pd.DataFrame
+    caution: str = CAUTION
+
+
+def forbidden_evidence(config: Config, team: str | None = None) -> ForbiddenEvidence:
+    team_filter, params = ("AND team = ?", [team]) if team else ("", [])
+    rows_sql = f"""
+        WITH latest AS (
+            SELECT * FROM policy_findings
+            WHERE scope = 'decision_maker' AND check_kind IN ('forbidden_direct', 'forbidden_proxy')
+              {team_filter}
+            QUALIFY window_end = max(window_end) OVER (PARTITION BY decision_maker))
+        SELECT d.decision_maker, d.team, d.cue, d.level, d.window_start, d.window_end, d.n,
+               d.disparity, d.direct, d.indirect, d.std_disparity, d.std_weight,
+               d.ci_low, d.ci_high, p.std_indirect, p.ci_low AS indirect_ci_low,
+               p.ci_high AS indirect_ci_high, d.q_value AS q_direct, p.q_value AS q_indirect,
+               coalesce(d.flagged, FALSE) AS flagged_direct,
+               coalesce(p.flagged, FALSE) AS flagged_indirect, d.assessable, d.reason
+        FROM latest d LEFT JOIN latest p
+          ON p.check_kind = 'forbidden_proxy' AND p.decision_maker = d.decision_maker
+         AND p.cue = d.cue AND p.level IS NOT DISTINCT FROM d.level
+        WHERE d.check_kind = 'forbidden_direct'
+        ORDER BY d.decision_maker, d.cue, d.level"""
+    proxies_sql = f"""
+        SELECT p.decision_maker, p.cue, p.level, p.proxy_cue, p.part, p.std_part
+        FROM policy_proxy_parts p
+        WHERE p.window_end = (SELECT max(window_end) FROM policy_findings f
+                              WHERE f.decision_maker = p.decision_maker
+                                AND f.scope = 'decision_maker')
+          AND p.decision_maker IN (SELECT decision_maker FROM fits
+                                   WHERE scope = 'decision_maker' {team_filter})
+        ORDER BY p.decision_maker, p.cue, p.level, abs(p.part) DESC"""
+    rows, proxies = _query(config, (rows_sql, params), (proxies_sql, params))
+    return ForbiddenEvidence(rows=rows, proxies=proxies)
+
+
+# --- alerts -------------------------------------------------------------------------------
+
+
+def alerts_table(config: Config, state: str | None = None) -> pd.DataFrame:
+    """The `alerts --json` objects flattened: evidence window, std_weight, interval,
+    q_value and n become columns; ``history`` stays a list of state changes."""
+    from monitor.alerts import list_alerts
+
+    docs = list_alerts(config, state=state, history=True)
+    rows = []
+    for d in docs:
+        ev = d.get("evidence") or {}
+        interval = ev.get("interval") or [None, None]
+        window = ev.get("window") or {}
+        rows.append(
+            {
+                **{k: v for k, v in d.items() if k != "evidence"},
+                "window_start": window.get("start"),
+                "window_end": window.get("end"),
+                "std_weight": ev.get("std_weight"),
+                "ci_low": interval[0],
+                "ci_high": interval[1],
+                "q_value": ev.get("q_value"),
+                "n": ev.get("n"),
+                "evidence": ev,
+            }
+        )
+    return pd.DataFrame(rows)
+
+
+@dataclass(frozen=True)
+class AckResult:
+    ok: bool
+    message: str
+    alert: dict | None = None
+
+
+BUSY_MESSAGE = "The store is busy (the nightly job is writing); try again in a minute."
+
+
+def acknowledge_alert(config: Config, alert_id: int, by: str, note: str) -> AckResult:
+    """Acknowledge through ``monitor.alerts.acknowledge`` (the store's single writer,
+    short lock timeout).  A busy store or a user error becomes a message, not a crash."""
+    from monitor.alerts import AlertUsageError, acknowledge
+
+    try:
+        alert = acknowledge(config, int(alert_id), by, note, timeout_s=3.0)
+    except StoreBusy:
+        return AckResult(False, BUSY_MESSAGE)
+    except AlertUsageError as exc:
+        return AckResult(False, str(exc))
+    return AckResult(True, f"Alert {alert_id} acknowledged by {by}.", alert)
+
+
+# --- data health ------------------------------------------------------------------------------
+
+
+@dataclass(frozen=True)
+class DataHealth:
+    """``batches``: per kind and status, files and row counts with the last ingest time.
+    ``quarantine``: kind, reason, rows.  ``quarantine_sample``: up to three rejected
+    rows per reason.  ``coverage``: per decision month, decisions, linked outcomes,
+    share linked and the median / 90th-percentile outcome lag in days.
+    ``last_nightly``: the newest run with command 'nightly' and status 'ok' (run_id,
+    started_at, finished_at, message) or None; ``last_run``: the newest run of any kind."""
+
+    batches: pd.DataFrame
+    quarantine: pd.DataFrame
+    quarantine_sample: pd.DataFrame
+    coverage: pd.DataFrame
+    last_nightly: dict | None
+    last_run: dict | None
+
+
+def data_health(config: Config) -> DataHealth:
+    frames = _query(
+        config,
+        (
+            """SELECT kind, status, count(*) AS files, sum(rows_read) AS rows_read,
+                      sum(rows_accepted) AS accepted, sum(rows_quarantined) AS quarantined,
+                      sum(rows_duplicate) AS duplicates, max(finished_at) AS last_finished
+               FROM batches GROUP BY kind, status ORDER BY kind, status""",
+            [],
+        ),
+        ("SELECT kind, reason, count(*) AS rows FROM quarantine GROUP BY ALL ORDER BY 3 DESC", []),
+        (
+            """SELECT q.kind, q.reason, q.record_id, q.message, q.raw_row, b.path AS file,
+                      q.source_line
+               FROM quarantine q LEFT JOIN batches b USING (batch_id)
+               QUALIFY row_number() OVER (PARTITION BY q.reason ORDER BY q.batch_id,
+                                          q.source_line) <= 3
+               ORDER BY q.reason, q.batch_id, q.source_line""",
+            [],
+        ),
+        (
+            """SELECT date_trunc('month', decided_day)::DATE AS month, count(*) AS decisions,
+                      count(criterion) AS linked,
+                      median(date_diff('second', decided_at, observed_at)) / 86400.0
+                          AS median_lag_days,
+                      quantile_cont(date_diff('second', decided_at, observed_at), 0.9)
+                          / 86400.0 AS p90_lag_days
+               FROM decisions_with_outcome GROUP BY 1 ORDER BY 1""",
+            [],
+        ),
+        (
+            """SELECT run_id, command, status, started_at, finished_at, message FROM runs
+               ORDER BY finished_at DESC NULLS LAST, started_at DESC""",
+            [],
+        ),
+    )
+    batches, quarantine, sample, coverage, runs = frames
+    coverage["share_linked"] = coverage["linked"] / coverage["decisions"].where(
+        coverage["decisions"] > 0
+    )
+    ok = runs[(runs["command"] == "nightly") & (runs["status"] == "ok")]
+    return DataHealth(
+        batches=batches,
+        quarantine=quarantine,
+        quarantine_sample=sample,
+        coverage=coverage,
+        last_nightly=ok.iloc[0].to_dict() if len(ok) else None,
+        last_run=runs.iloc[0].to_dict() if len(runs) else None,
+    )
+
+
+# --- audit pack ------------------------------------------------------------------------------
+
+
+def audit_available() -> bool:
+    try:
+        from monitor import audit  # noqa: F401
+    except ImportError:
+        return False
+    return hasattr(audit, "export")
+
+
+def quarters(period: tuple[date, date]) -> list[str]:
+    """Calendar quarters ("2025Q3") touching the period, newest first."""
+    lo, hi = period
+    out, (y, q) = [], (lo.year, (lo.month - 1) // 3 + 1)
+    while (y, q) <= (hi.year, (hi.month - 1) // 3 + 1):
+        out.append(f"{y}Q{q}")
+        y, q = (y + 1, 1) if q == 4 else (y, q + 1)
+    return out[::-1]
+
+
+def build_audit_pack(
+    config: Config, quarter: str, as_of: str | None, formats: list[str]
+) -> tuple[bytes, dict]:
+    """Run the audit export into a temporary folder and return (zip bytes, its result).
+
+    Raises ImportError when ``monitor.audit`` is not installed."""
+    from monitor.audit import export
+
+    with tempfile.TemporaryDirectory(prefix="cuewatch-audit-") as tmp:
+        out = Path(tmp) / f"audit-{quarter}"
+        result = export(
+            config, quarter=quarter, out_dir=out, as_of=as_of, formats=formats,
+            include_rows=[], compare=None,
+        )  # fmt: skip
+        buf = io.BytesIO()
+        with zipfile.ZipFile(buf, "w", zipfile.ZIP_DEFLATED) as zf:
+            for path in sorted(out.rglob("*")):
+                if path.is_file():
+                    zf.write(path, path.relative_to(out.parent))
+    return buf.getvalue(), result
+
+
+# --- launching -------------------------------------------------------------------------------
+
+# Our own palette, passed as theme options so no file outside the package is needed.
+THEME = {
+    "theme.base": "light",
+    "theme.primaryColor": "#1f6f78",
+    "theme.backgroundColor": "#fbfaf7",
+    "theme.secondaryBackgroundColor": "#eef2ef",
+    "theme.textColor": "#1d2b2f",
+}
+
+
+def app_path() -> Path:
+    """dashboards/app.py beside the ``monitor`` package (a source or editable install)."""
+    path = Path(__file__).resolve().parent.parent / "dashboards" / "app.py"
+    if not path.exists():
+        raise FileNotFoundError(
+            f"the dashboard app was not found at {path}; install cuewatch from its source "
+            "folder (pip install -e .)."
+        )
+    return path
+
+
+def launch_command(config: Config, port: int) -> list[str]:
+    cmd = [sys.executable, "-m", "streamlit", "run", str(app_path()),
+           "--server.address", "127.0.0.1", "--server.port", str(int(port)),
+           "--server.headless", "true", "--browser.gatherUsageStats", "false"]  # fmt: skip
+    for key, value in THEME.items():
+        cmd += [f"--{key}", value]
+    return [*cmd, "--", "--config", str(config.source)]
+
+
+def launch(config: Config, port: int) -> int:
+    """Run the Streamlit app on 127.0.0.1:``port`` until it stops; its exit code."""
+    proc = subprocess.Popen(launch_command(config, port))
+    try:
+        return proc.wait()
+    except KeyboardInterrupt:
+        proc.terminate()
+        try:
+            return proc.wait(timeout=10)
+        except subprocess.TimeoutExpired:
+            proc.kill()
+            return proc.wait()

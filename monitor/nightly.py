@@ -1,0 +1,69 @@
+"""The nightly job: ingest the landing folders, refresh the fits, assess the policy.
+
+Each stage talks to the others only through the store.  The run is recorded in the
+``runs`` table (status ok / failed with its message) so the dashboard can show the
+last successful nightly run.
+"""
+
+from __future__ import annotations
+
+import logging
+import uuid
+from dataclasses import dataclass, field
+from datetime import datetime
+
+from monitor.config import Config
+from monitor.store import Store, utc_now
+
+log = logging.getLogger("cuewatch.nightly")
+
+
+@dataclass
+class NightlySummary:
+    run_id: str
+    status: str
+    ingest: dict = field(default_factory=dict)
+    refit: dict = field(default_factory=dict)
+    assess: dict = field(default_factory=dict)
+    message: str = ""
+
+    def to_json(self) -> dict:
+        return self.__dict__.copy()
+
+
+def run_nightly(config: Config, *, now: datetime | None = None) -> NightlySummary:
+    """Run ingest -> refit -> assess once.  A failed file does not stop the run (it is
+    recorded in ``batches`` and reported); any other error marks the run failed and is
+    re-raised after being recorded."""
+    from monitor.alerts import assess
+    from monitor.ingest import ingest
+    from monitor.windows import refit
+
+    store = Store(config)
+    run_id = uuid.uuid4().hex[:12]
+    started = utc_now()
+    summary = NightlySummary(run_id, "running")
+    try:
+        result = ingest(config, (), now=now)
+        summary.ingest = result.to_json()
+        summary.refit = refit(config).to_json()
+        summary.assess = assess(config, now=now).to_json()
+        failed = result.failed_files
+        summary.status = "ok" if not failed else "ok_with_failed_files"
+        if failed:
+            summary.message = f"{len(failed)} file(s) failed; first: {failed[0].path}: {failed[0].message}"
+    except Exception as exc:
+        summary.status = "failed"
+        summary.message = str(exc).splitlines()[0] if str(exc) else type(exc).__name__
+        _record(store, run_id, started, summary)
+        raise
+    _record(store, run_id, started, summary)
+    return summary
+
+
+def _record(store: Store, run_id: str, started, summary: NightlySummary) -> None:
+    try:
+        with store.writer() as con:
+            store.record_run(con, run_id, "nightly", started, summary.status, summary.message)
+    except Exception:  # recording must never hide the run's own outcome
+        log.exception("could not record the nightly run")
