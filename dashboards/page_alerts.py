@@ -49,7 +49,7 @@ def show(alert: pd.Series, can_ack: bool) -> None:
             with st.form(f"ack-{alert['id']}", clear_on_submit=True):
                 by = st.text_input("Your name", key=f"by-{alert['id']}")
                 note = st.text_area("Note", key=f"note-{alert['id']}")
-                if st.form_submit_button("Acknowledge"):
+                if st.form_submit_button("Acknowledge", key=f"ack-btn-{alert['id']}"):
                     if not by.strip():
                         st.error("Say who is acknowledging the alert.")
                     else:

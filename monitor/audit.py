@@ -306,8 +306,8 @@ def export(
     label, first, last = parse_quarter(quarter)
     fmts = _check_formats(formats or list(FORMATS))
     tz = config.decisions.timezone
-    if compare is not None and as_of is not None:
-        raise ExportUsageError("give either --as-of or --compare-as-of, not both.")
+    if compare is not None and (as_of is not None or include_rows):
+        raise ExportUsageError("--compare-as-of takes neither --as-of nor --include-rows.")
     created = utc_now()
     warnings: list[str] = []
     if compare is not None:

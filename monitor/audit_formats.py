@@ -187,7 +187,9 @@ def write_workbook(
                 sh.cell(row=i, column=j, value=v)
         for j, (name, kind) in enumerate(table.columns, start=1):
             letter = get_column_letter(j)
-            fmt = _NUMBER_FORMATS.get(kind)
+            # p- and q-values span many decades: scientific, so 1e-9 does not show as 0.
+            small = kind == "float" and (name.startswith(("p_", "q_")) or name.endswith("_p"))
+            fmt = "0.00E+00" if small else _NUMBER_FORMATS.get(kind)
             if fmt:
                 for (cell,) in sh.iter_rows(min_row=2, min_col=j, max_col=j):
                     cell.number_format = fmt

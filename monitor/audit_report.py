@@ -120,7 +120,9 @@ def bar_chart(
     as a grey 'n/a'); values are clipped to [lo, hi]; ``marks`` draws dashed reference
     lines (e.g. the policy tolerance).
     """
-    bar, gap, left, width, top = 12, 8, 170, 420, 34
+    # 11px labels are about 6.5px a character wide: size the margin to the longest.
+    left = max(120, int(6.5 * max((len(x) for x in labels), default=0)) + 16)
+    bar, gap, width, top = 12, 8, 420, 34
     per = bar * len(series) + gap
     height = top + per * max(len(labels), 1) + 30
     sx = lambda v: left + (min(max(v, lo), hi) - lo) / (hi - lo) * width  # noqa: E731
@@ -156,7 +158,7 @@ def bar_chart(
             )
     axis_y = top + per * max(len(labels), 1)
     out.append(f'<line x1="{left}" y1="{axis_y}" x2="{left + width}" y2="{axis_y}" class="ax"/>')
-    for t in (lo, (lo + hi) / 2, hi, *([0.0] if lo < 0 < hi else [])):
+    for t in sorted({lo, (lo + hi) / 2, hi, *([0.0] if lo < 0 < hi else [])}):
         out.append(
             f'<text x="{sx(t):.1f}" y="{axis_y + 14}" text-anchor="middle" class="lg">{t:g}</text>'
         )

@@ -375,7 +375,7 @@ def reader_sql(config: Config, path: Path, fmt: str, columns: list[FileColumn], 
             # in a vectorised engine, so it is only reached through a CASE on json_valid().
             f"SELECT {keys}, is_blank, NOT is_blank AND NOT is_object AS is_malformed, raw_line FROM ("
             f"  SELECT *, CASE WHEN is_object THEN raw_line END AS obj FROM ("
-            f"    SELECT line AS raw_line, (line IS NULL OR trim(line) = '') AS is_blank,"
+            f"    SELECT line AS raw_line, (line IS NULL OR trim(line, ' \t\r\n\f\v') = '') AS is_blank,"
             f"      coalesce(CASE WHEN json_valid(line) THEN json_type(line) = 'OBJECT' END, false)"
             f"        AS is_object"
             f"    FROM read_csv({p}, columns = {{'line': 'VARCHAR'}}, header = false, delim = '\x1f',"
