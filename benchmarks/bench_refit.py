@@ -141,8 +141,7 @@ def add_nightly(cfg_path: Path, rows_total: int, days: int, makers: int, share: 
                           *[f"x{j}" for j in range(K)]])  # fmt: skip
         new_first = per_day * days
         con.execute(
-            f"INSERT INTO decisions ({cols}) "
-            f"{_decision_select(new_first, per_day, 1, makers, 3)}"
+            f"INSERT INTO decisions ({cols}) {_decision_select(new_first, per_day, 1, makers, 3)}"
         )
         stamp = "now()"
         con.execute(

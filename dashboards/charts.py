@@ -38,26 +38,35 @@ def _status_scale() -> alt.Scale:
 
 def overview_chart(rows: pd.DataFrame) -> alt.Chart:
     """Dots for consistency R_s and achievement r_a per decision-maker in the latest
-    window; names with open alerts are drawn in the flag colour."""
+    window; the names of decision-makers with open alerts are drawn bold in the flag
+    colour."""
     people = rows[rows["scope"] == "decision_maker"].copy()
-    people["alerts"] = people["open_alerts"].map(lambda n: "open alert" if n else "no alert")
     long = people.melt(
-        id_vars=["decision_maker", "n_decisions", "n_linked", "alerts", "why"],
+        id_vars=["decision_maker", "n_decisions", "n_linked", "why"],
         value_vars=["R_s", "r_a"],
         var_name="figure",
         value_name="value",
     )
     long["figure"] = long["figure"].map({"R_s": "consistency R_s", "r_a": "achievement r_a"})
-    y = alt.Y("decision_maker:N", title=None, sort=None)
-    dots = (
+    flagged = people.loc[people["open_alerts"] > 0, "decision_maker"].astype(str).tolist()
+    is_flagged = f"indexof({flagged!r}, datum.value) >= 0"
+    axis = alt.Axis(
+        labelColor=alt.ExprRef(f"{is_flagged} ? '{COLOURS['flag']}' : '#1d2b2f'"),
+        labelFontWeight=alt.ExprRef(f"{is_flagged} ? 'bold' : 'normal'"),
+        labelOverlap=False,
+    )
+    return (
         alt.Chart(long)
-        .mark_circle(size=90)
+        .mark_circle(size=90, opacity=0.9)
         .encode(
-            y=y,
+            y=alt.Y("decision_maker:N", title=None, sort=None, axis=axis),
             x=alt.X("value:Q", title="latest window", scale=alt.Scale(domain=[-0.2, 1])),
             color=alt.Color(
                 "figure:N",
-                scale=alt.Scale(range=[COLOURS["person"], "#6a4c93"]),
+                scale=alt.Scale(
+                    domain=["consistency R_s", "achievement r_a"],
+                    range=[COLOURS["person"], "#6a4c93"],
+                ),  # fmt: skip
                 legend=alt.Legend(title=None, orient="top"),
             ),
             tooltip=[
@@ -69,24 +78,8 @@ def overview_chart(rows: pd.DataFrame) -> alt.Chart:
                 "why",
             ],  # fmt: skip
         )
+        .properties(height=max(160, 26 * len(people)))
     )
-    marks = (
-        alt.Chart(people)
-        .mark_text(align="right", dx=-6, fontWeight="bold")
-        .encode(
-            y=y,
-            x=alt.value(0),
-            text=alt.Text("alerts:N"),
-            color=alt.Color(
-                "alerts:N",
-                scale=alt.Scale(
-                    domain=["open alert", "no alert"], range=[COLOURS["flag"], "#ffffff00"]
-                ),  # fmt: skip
-                legend=None,
-            ),
-        )
-    )
-    return (dots + marks).properties(height=max(160, 22 * len(people)))
 
 
 def weight_panels(weights: pd.DataFrame, spans: pd.DataFrame, columns: int = 3) -> alt.ConcatChart:
@@ -139,7 +132,11 @@ def weight_panels(weights: pd.DataFrame, spans: pd.DataFrame, columns: int = 3) 
                 height=130,
             )
         )
-    return alt.concat(*panels, columns=columns).resolve_scale(y="independent")
+    return (
+        alt.concat(*panels, columns=columns)
+        .resolve_scale(y="independent")
+        .configure_legend(orient="bottom", title=None, labelFontSize=12)
+    )
 
 
 def lens_chart(lens: pd.DataFrame) -> alt.Chart:

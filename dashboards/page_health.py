@@ -28,8 +28,8 @@ if health.last_run and health.last_run.get("status") != "ok":
 st.subheader("Outcome coverage and lag by decision month")
 cov = health.coverage
 if len(cov):
-    base = alt.Chart(cov).encode(x=alt.X("month:T", title=None))
-    share = base.mark_bar(color="#1f6f78").encode(
+    base = alt.Chart(cov).encode(x=alt.X("yearmonth(month):O", title=None))
+    share = base.mark_bar(color="#1f6f78", opacity=0.85).encode(
         y=alt.Y("share_linked:Q", title="share with an outcome", axis=alt.Axis(format="%")),
         tooltip=["month:T", "decisions", "linked", alt.Tooltip("share_linked:Q", format=".1%")],
     )
@@ -55,11 +55,11 @@ else:
         alt.Chart(health.quarantine)
         .mark_bar(color="#8a817c")
         .encode(
-            y=alt.Y("reason:N", sort="-x", title=None),
-            x=alt.X("rows:Q"),
+            y=alt.Y("reason:N", sort="-x", title=None, axis=alt.Axis(labelLimit=260)),
+            x=alt.X("rows:Q", axis=alt.Axis(format="d", tickMinStep=1)),
             tooltip=["kind", "reason", "rows"],
         )  # fmt: skip
-        .properties(height=max(120, 24 * len(health.quarantine))),
+        .properties(height=max(120, 30 * len(health.quarantine))),
         width="stretch",
     )
     with st.expander("A sample of rejected rows"):

@@ -8,19 +8,24 @@ from dashboards import charts, ui
 from monitor import dashboard_data as dd
 
 st.title("Team at a glance")
-span = ui.load(dd.window_range)
-if span is None:
+# One read gives the period's figures, the stored span and the team list; the widgets'
+# values from the previous run (session state) choose what it reads.
+team = st.session_state.get("team", "All teams")
+chosen_team = None if team == "All teams" else team
+view = ui.load(dd.overview, st.session_state.get("period"), team=chosen_team)
+if view.span is None:
     st.info("No window fits yet: run `cuewatch refit` (or the nightly job).")
     st.stop()
 
 left, right = st.columns([1, 2])
-team_names = ui.load(dd.teams)
-team = left.selectbox("Team", ["All teams", *team_names], key="team")
-period = right.slider(
-    "Period (window ends)", min_value=span[0], max_value=span[1], value=span, key="period"
+left.selectbox("Team", ["All teams", *view.teams], key="team")
+right.slider(
+    "Period (window ends)",
+    min_value=view.span[0],
+    max_value=view.span[1],
+    value=view.period,
+    key="period",
 )
-chosen_team = None if team == "All teams" else team
-view = ui.load(dd.overview, tuple(period), team=chosen_team)
 rows = view.rows
 
 st.subheader("Flagged now")

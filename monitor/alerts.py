@@ -62,7 +62,9 @@ class AssessSummary:
 # --- assess ---------------------------------------------------------------------------
 
 
-def assess(config: Config, *, now: datetime | None = None, force: bool = False, sleep=None) -> AssessSummary:
+def assess(
+    config: Config, *, now: datetime | None = None, force: bool = False, sleep=None
+) -> AssessSummary:
     """Evaluate the policy on the stored fits, update alerts, notify.
 
     Idempotent: when the fits have not changed since the last assessment nothing is
@@ -137,8 +139,11 @@ def _window_states(findings: pd.DataFrame) -> pd.DataFrame:
     f["abs_size"] = np.where(
         f["check_kind"] == "forbidden_proxy", f["std_indirect"].abs(), f["std_weight"].abs()
     )
-    f = f.sort_values(["kind", "scope", "decision_maker", "cue", "window_end", "abs_size"],
-                      ascending=[True, True, True, True, True, False], na_position="last")
+    f = f.sort_values(
+        ["kind", "scope", "decision_maker", "cue", "window_end", "abs_size"],
+        ascending=[True, True, True, True, True, False],
+        na_position="last",
+    )
     grouped = f.groupby(["kind", "scope", "decision_maker", "cue", "window_end"], sort=True)
     states = grouped.agg(flagged=("flagged", "any"), assessable=("assessable", "any"))
     top = grouped.head(1).set_index(["kind", "scope", "decision_maker", "cue", "window_end"])
@@ -170,7 +175,9 @@ def _evidence(row: pd.Series) -> dict:
     if kind == "drift":
         ev.update(change=_num(row.get("direct")), z=_num(row.get("statistic")))
     if kind in ("consistency", "achievement"):
-        ev.update(figure="R_s" if kind == "consistency" else "r_a", value=_num(row.get("statistic")))
+        ev.update(
+            figure="R_s" if kind == "consistency" else "r_a", value=_num(row.get("statistic"))
+        )
     return ev
 
 
@@ -198,7 +205,9 @@ def _reconcile(con, config: Config, findings: pd.DataFrame, now: datetime) -> As
             flagged_rows = g.iloc[ep.open_index : last + 1]
             flagged_rows = flagged_rows[flagged_rows["flagged"]]
             evidence = _evidence(flagged_rows.iloc[-1])
-            resolve_end = None if ep.resolve_index is None else _iso(g.loc[ep.resolve_index, "window_end"])
+            resolve_end = (
+                None if ep.resolve_index is None else _iso(g.loc[ep.resolve_index, "window_end"])
+            )
             team = g.loc[ep.open_index, "team"]
             stored = by_key.get((*key, open_end))
             if stored is None:
@@ -208,8 +217,15 @@ def _reconcile(con, config: Config, findings: pd.DataFrame, now: datetime) -> As
                 continue
             seen.add(int(stored.alert_id))
             if resolve_end and stored.state != "resolved":
-                _resolve(con, config, int(stored.alert_id), stored.state, resolve_end, now,
-                         "resolved after consecutive clear windows")
+                _resolve(
+                    con,
+                    config,
+                    int(stored.alert_id),
+                    stored.state,
+                    resolve_end,
+                    now,
+                    "resolved after consecutive clear windows",
+                )
                 summary.resolved.append(int(stored.alert_id))
             new_ev = json.dumps(evidence, sort_keys=True)
             if new_ev != stored.evidence:
@@ -220,8 +236,15 @@ def _reconcile(con, config: Config, findings: pd.DataFrame, now: datetime) -> As
     # Open alerts whose episode the (restated) data no longer shows.
     for r in existing.itertuples(index=False):
         if int(r.alert_id) not in seen and r.state != "resolved":
-            _resolve(con, config, int(r.alert_id), r.state, None, now,
-                     "no longer supported by the data after restatement")
+            _resolve(
+                con,
+                config,
+                int(r.alert_id),
+                r.state,
+                None,
+                now,
+                "no longer supported by the data after restatement",
+            )
             summary.resolved.append(int(r.alert_id))
     return summary
 
@@ -235,14 +258,43 @@ def _create(con, config, key, team, open_end, resolve_end, evidence, now) -> int
         "INSERT INTO alerts (alert_id, kind, scope, decision_maker, team, cue, state, opened_at, "
         "opened_window_end, resolved_at, resolved_window_end, evidence, updated_at) "
         "VALUES (?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?)",
-        [alert_id, kind, scope, dm, team if isinstance(team, str) else None, cue, state, now,
-         open_end, now if resolve_end else None, resolve_end, ev, now],
+        [
+            alert_id,
+            kind,
+            scope,
+            dm,
+            team if isinstance(team, str) else None,
+            cue,
+            state,
+            now,
+            open_end,
+            now if resolve_end else None,
+            resolve_end,
+            ev,
+            now,
+        ],
     )
-    _history(con, alert_id, now, None, "open", "cuewatch assess",
-             f"{config.policy.consecutive_windows} consecutive flagged window(s) ending {open_end}", ev)
+    _history(
+        con,
+        alert_id,
+        now,
+        None,
+        "open",
+        "cuewatch assess",
+        f"{config.policy.consecutive_windows} consecutive flagged window(s) ending {open_end}",
+        ev,
+    )
     if resolve_end:
-        _history(con, alert_id, now, "open", "resolved", "cuewatch assess",
-                 f"episode already over when first seen (clear from window ending {resolve_end})", ev)
+        _history(
+            con,
+            alert_id,
+            now,
+            "open",
+            "resolved",
+            "cuewatch assess",
+            f"episode already over when first seen (clear from window ending {resolve_end})",
+            ev,
+        )
     else:
         _queue(con, config, alert_id, "opened", now)
     return alert_id
@@ -316,7 +368,9 @@ def deliver_pending(con, config: Config, *, sleep=None) -> tuple[int, list[str]]
 # --- reading and acknowledging ------------------------------------------------------------
 
 
-def _alert_docs(con, ids: list[int] | None = None, state: str | None = None, history: bool = False) -> list[dict]:
+def _alert_docs(
+    con, ids: list[int] | None = None, state: str | None = None, history: bool = False
+) -> list[dict]:
     where, params = [], []
     if ids is not None:
         where.append(f"alert_id IN ({', '.join('?' for _ in ids)})")
@@ -334,10 +388,20 @@ def _alert_docs(con, ids: list[int] | None = None, state: str | None = None, his
     docs = []
     for r in rows:
         d = {
-            "id": int(r[0]), "kind": r[1], "scope": r[2], "decision_maker": r[3], "team": r[4],
-            "cue": r[5], "state": r[6], "opened_at": _iso(r[7]), "opened_window_end": _iso(r[8]),
-            "resolved_at": _iso(r[9]), "resolved_window_end": _iso(r[10]),
-            "acknowledged_by": r[11], "acknowledged_at": _iso(r[12]), "note": r[13],
+            "id": int(r[0]),
+            "kind": r[1],
+            "scope": r[2],
+            "decision_maker": r[3],
+            "team": r[4],
+            "cue": r[5],
+            "state": r[6],
+            "opened_at": _iso(r[7]),
+            "opened_window_end": _iso(r[8]),
+            "resolved_at": _iso(r[9]),
+            "resolved_window_end": _iso(r[10]),
+            "acknowledged_by": r[11],
+            "acknowledged_at": _iso(r[12]),
+            "note": r[13],
             "evidence": json.loads(r[14]),
         }
         docs.append(d)
@@ -366,20 +430,26 @@ def list_alerts(config: Config, state: str | None = None, *, history: bool = Fal
         return _alert_docs(con, None, state, history)
 
 
-def acknowledge(config: Config, alert_id: int, by: str, note: str, *, timeout_s: float | None = None) -> dict:
+def acknowledge(
+    config: Config, alert_id: int, by: str, note: str, *, timeout_s: float | None = None
+) -> dict:
     """Mark an open alert acknowledged by ``by`` with ``note``; returns the alert."""
     if not by.strip():
         raise AlertUsageError("--by must name who acknowledges the alert.")
     store = Store(config)
     with store.writer(timeout_s=timeout_s) as con:
         store.ensure_ready(con)
-        rows = con.execute("SELECT state, acknowledged_by FROM alerts WHERE alert_id = ?", [alert_id]).fetchall()
+        rows = con.execute(
+            "SELECT state, acknowledged_by FROM alerts WHERE alert_id = ?", [alert_id]
+        ).fetchall()
         if not rows:
             raise AlertUsageError(f"there is no alert with id {alert_id}.")
         state, who = rows[0]
         if state != "open":
             extra = f" by {who}" if who else ""
-            raise AlertUsageError(f"alert {alert_id} is {state}{extra}; only open alerts can be acknowledged.")
+            raise AlertUsageError(
+                f"alert {alert_id} is {state}{extra}; only open alerts can be acknowledged."
+            )
         now = utc_now()
         con.execute("BEGIN")
         try:

@@ -5,8 +5,9 @@ rolling windows) with the outcome that counted at the as-of time T: only rows in
 at or before T, the latest outcome correction ingested by T.  Rows come back in
 decision-id order and every figure is computed from them with numpy, so the same T
 always gives the same numbers, and floats are rounded (``audit_formats``) before they
-reach a file.  The tables, their formats and the report live in ``audit_formats`` and
-``audit_report``; the figures are computed in ``audit_figures``-style helpers below.
+reach a file.  This module fetches rows and writes the pack; the fitted tables come
+from ``audit_figures``, coverage / alerts-as-of / restatements from ``audit_asof``,
+the file formats from ``audit_formats`` and the words and HTML from ``audit_report``.
 """
 
 from __future__ import annotations
@@ -154,7 +155,8 @@ def fetch_alerts(config: Config, as_of: str) -> tuple[pd.DataFrame, pd.DataFrame
         hist = con.execute(
             "SELECT alert_id, changed_at, from_state, to_state, changed_by, note, evidence "
             "FROM alert_history WHERE changed_at <= ?::TIMESTAMPTZ "
-            "ORDER BY alert_id, changed_at, to_state",
+            "ORDER BY alert_id, changed_at, CASE to_state WHEN 'open' THEN 0 "
+            "WHEN 'acknowledged' THEN 1 ELSE 2 END",
             [as_of],
         ).df()
         alerts = con.execute(
@@ -214,21 +216,21 @@ def fingerprint(rows: QuarterRows, history: pd.DataFrame) -> dict:
     """sha256 over exactly the keys used: decisions (decision_id, batch_id), outcomes
     (decision_id, batch_id, source_line), the batch ids and the alert-history rows."""
     f = rows.frame
-    h = hashlib.sha256()
-    for did, b in zip(f["decision_id"], f["batch_id"], strict=True):
-        h.update(f"d\t{did}\t{int(b)}\n".encode())
     linked = f[f["o_batch"].notna()]
-    for did, b, line in zip(
-        linked["decision_id"], linked["o_batch"], linked["o_line"], strict=True
-    ):
-        h.update(f"o\t{did}\t{int(b)}\t{'' if pd.isna(line) else int(line)}\n".encode())
     batches = sorted({int(b) for b in f["batch_id"]} | {int(b) for b in linked["o_batch"]})
-    for b in batches:
-        h.update(f"b\t{b}\n".encode())
-    for aid, at, to in zip(
-        history["alert_id"], history["changed_at"], history["to_state"], strict=True
-    ):
-        h.update(f"a\t{int(aid)}\t{pd.Timestamp(at).isoformat()}\t{to}\n".encode())
+    lines = [f"d\t{d}\t{int(b)}" for d, b in zip(f["decision_id"], f["batch_id"], strict=True)]
+    lines += [
+        f"o\t{d}\t{int(b)}\t{'' if pd.isna(n) else int(n)}"
+        for d, b, n in zip(linked["decision_id"], linked["o_batch"], linked["o_line"], strict=True)
+    ]
+    lines += [f"b\t{b}" for b in batches]
+    lines += [
+        f"a\t{int(a)}\t{pd.Timestamp(at).isoformat()}\t{to}"
+        for a, at, to in zip(
+            history["alert_id"], history["changed_at"], history["to_state"], strict=True
+        )
+    ]
+    h = hashlib.sha256(("\n".join(lines) + "\n").encode())
     return {
         "sha256": h.hexdigest(),
         "decisions": int(len(f)),
@@ -315,7 +317,7 @@ def export(
         if t2 < t1:
             raise ExportUsageError("--compare-as-of T1 T2 needs T1 at or before T2.")
         before, after = snapshot(config, label, iso(t1)), snapshot(config, label, iso(t2))
-        tables = [restatement_table(config, before, after)]
+        tables = [restatement_table(before, after)]
         as_of_text, defaulted = iso(t2), False
         fp = {"before": before.fingerprint, "after": after.fingerprint}
     else:

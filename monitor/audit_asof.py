@@ -11,7 +11,6 @@ import pandas as pd
 
 from monitor.audit_figures import groups_of
 from monitor.audit_formats import Table, clean_float, make_table, spec
-from monitor.config import Config
 
 # --- coverage ----------------------------------------------------------------------------------
 
@@ -165,7 +164,7 @@ def _changes(before: pd.DataFrame, after: pd.DataFrame, mask: np.ndarray) -> dic
     }
 
 
-def restatement_table(config: Config, before, after) -> Table:
+def restatement_table(before, after) -> Table:
     """Every compared figure whose value moved between two snapshots, and why."""
     old_q = before.rows.frame[before.rows.in_quarter]
     new_q = after.rows.frame[after.rows.in_quarter].reset_index(drop=True)

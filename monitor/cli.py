@@ -111,11 +111,17 @@ def init(obj: Context, as_json: bool) -> None:
     elif result["applied"] or result["cue_columns_added"]:
         click.echo(
             f"Migrated store {result['path']} to schema version {result['schema_version']}"
-            + (f"; added cue columns {', '.join(result['cue_columns_added'])}" if result["cue_columns_added"] else "")
+            + (
+                f"; added cue columns {', '.join(result['cue_columns_added'])}"
+                if result["cue_columns_added"]
+                else ""
+            )
             + "."
         )
     else:
-        click.echo(f"Store {result['path']} is up to date (schema version {result['schema_version']}).")
+        click.echo(
+            f"Store {result['path']} is up to date (schema version {result['schema_version']})."
+        )
 
 
 @main.command()
@@ -195,13 +201,19 @@ def refit(obj: Context, full: bool, as_json: bool) -> None:
 
 
 @main.command()
-@click.option("--decision-maker", "decision_maker", help="Only this decision-maker (or team, or 'all').")
+@click.option(
+    "--decision-maker", "decision_maker", help="Only this decision-maker (or team, or 'all')."
+)
 @click.option("--latest", is_flag=True, help="Only the newest window of each series.")
-@click.option("--scope", type=click.Choice(["decision_maker", "team", "all"]), help="Only this scope.")
+@click.option(
+    "--scope", type=click.Choice(["decision_maker", "team", "all"]), help="Only this scope."
+)
 @click.option("--json", "as_json", is_flag=True, help="Print the fits as a JSON array.")
 @click.pass_obj
 @handles_user_errors
-def fits(obj: Context, decision_maker: str | None, latest: bool, scope: str | None, as_json: bool) -> None:
+def fits(
+    obj: Context, decision_maker: str | None, latest: bool, scope: str | None, as_json: bool
+) -> None:
     """Show stored window fits: weights, consistency, achievement."""
     from monitor.windows import read_fits
 
@@ -222,14 +234,37 @@ def format_fits_table(rows: list[dict]) -> str:
         return "-" if v is None else fmt.format(v)
 
     table = Table(title="Window fits (R_s consistency, r_a achievement, G matching)")
-    for col in ("scope", "who", "window", "n", "linked", "R_s", "R_e", "r_a", "G", "C", "strongest cues (std weight)", "note"):
+    for col in (
+        "scope",
+        "who",
+        "window",
+        "n",
+        "linked",
+        "R_s",
+        "R_e",
+        "r_a",
+        "G",
+        "C",
+        "strongest cues (std weight)",
+        "note",
+    ):
         table.add_column(col)
     for r in rows:
-        cues = sorted((c for c in r["cues"] if c["std_weight"] is not None), key=lambda c: -abs(c["std_weight"]))[:3]
+        cues = sorted(
+            (c for c in r["cues"] if c["std_weight"] is not None),
+            key=lambda c: -abs(c["std_weight"]),
+        )[:3]
         table.add_row(
-            r["scope"], str(r["decision_maker"]), f"{r['window_start']}..{r['window_end']}",
-            str(r["n_decisions"]), str(r["n_linked"]), num(r["R_s"]), num(r["R_e"]), num(r["r_a"]),
-            num(r["G"]), num(r["C"]),
+            r["scope"],
+            str(r["decision_maker"]),
+            f"{r['window_start']}..{r['window_end']}",
+            str(r["n_decisions"]),
+            str(r["n_linked"]),
+            num(r["R_s"]),
+            num(r["R_e"]),
+            num(r["r_a"]),
+            num(r["G"]),
+            num(r["C"]),
             ", ".join(f"{c['cue']} {c['std_weight']:+.2f}" for c in cues),
             r.get("reason") or "",
         )
@@ -251,25 +286,50 @@ def dashboard(obj: Context, port: int) -> None:
 
 @main.command()
 @click.option("--quarter", required=True, help="Calendar quarter, e.g. 2026Q3.")
-@click.option("--out", "out_dir", required=True, type=click.Path(file_okay=False), help="Output folder.")
+@click.option(
+    "--out", "out_dir", required=True, type=click.Path(file_okay=False), help="Output folder."
+)
 @click.option("--as-of", "as_of", help="Use only rows ingested at or before this time (ISO 8601).")
-@click.option("--format", "formats", default="csv,parquet,xlsx,html", show_default=True,
-              help="Comma-separated: csv, parquet, xlsx, html.")
-@click.option("--include-rows", "include_rows", multiple=True,
-              help="Also export this decision-maker's raw rows for the quarter (privacy warning).")
-@click.option("--compare-as-of", "compare", nargs=2, help="List restatements between two as-of times.")
+@click.option(
+    "--format",
+    "formats",
+    default="csv,parquet,xlsx,html",
+    show_default=True,
+    help="Comma-separated: csv, parquet, xlsx, html.",
+)
+@click.option(
+    "--include-rows",
+    "include_rows",
+    multiple=True,
+    help="Also export this decision-maker's raw rows for the quarter (privacy warning).",
+)
+@click.option(
+    "--compare-as-of", "compare", nargs=2, help="List restatements between two as-of times."
+)
 @click.option("--json", "as_json", is_flag=True, help="Print what was written as JSON.")
 @click.pass_obj
 @handles_user_errors
-def export(obj: Context, quarter: str, out_dir: str, as_of: str | None, formats: str,
-           include_rows: tuple[str, ...], compare: tuple[str, str] | None, as_json: bool) -> None:
+def export(
+    obj: Context,
+    quarter: str,
+    out_dir: str,
+    as_of: str | None,
+    formats: str,
+    include_rows: tuple[str, ...],
+    compare: tuple[str, str] | None,
+    as_json: bool,
+) -> None:
     """Write the quarterly audit tables (CSV, Parquet, XLSX, HTML) with a manifest."""
     from monitor.audit import export as run_export
 
     result = run_export(
-        obj.config, quarter=quarter, out_dir=Path(out_dir), as_of=as_of,
+        obj.config,
+        quarter=quarter,
+        out_dir=Path(out_dir),
+        as_of=as_of,
         formats=[f.strip() for f in formats.split(",") if f.strip()],
-        include_rows=list(include_rows), compare=compare,
+        include_rows=list(include_rows),
+        compare=compare,
     )
     if as_json:
         print_json(result)
@@ -308,7 +368,9 @@ def format_assess_summary(summary) -> str:
 
 
 @main.command()
-@click.option("--state", type=click.Choice(["open", "acknowledged", "resolved"]), help="Only this state.")
+@click.option(
+    "--state", type=click.Choice(["open", "acknowledged", "resolved"]), help="Only this state."
+)
 @click.option("--history", is_flag=True, help="Include each alert's state history.")
 @click.option("--json", "as_json", is_flag=True, help="Print the alerts as a JSON array.")
 @click.pass_obj
@@ -392,22 +454,36 @@ def schedule(obj: Context) -> None:
     from monitor.nightly import run_nightly
     from monitor.schedule import crontab_to_trigger, next_fire_times, run_schedule
 
-    logging.basicConfig(level=logging.INFO, format="%(asctime)s %(levelname)s %(name)s: %(message)s")
+    logging.basicConfig(
+        level=logging.INFO, format="%(asctime)s %(levelname)s %(name)s: %(message)s"
+    )
     cfg = obj.config
     crontab_to_trigger(cfg.schedule.cron, cfg.schedule.timezone)  # validate before starting
     from monitor.store import utc_now
 
     nxt = next_fire_times(cfg.schedule.cron, cfg.schedule.timezone, utc_now(), 1)
-    click.echo(f"Scheduling the nightly job '{cfg.schedule.cron}' ({cfg.schedule.timezone}); next run {nxt[0] if nxt else '?'}.")
+    click.echo(
+        f"Scheduling the nightly job '{cfg.schedule.cron}' ({cfg.schedule.timezone}); next run {nxt[0] if nxt else '?'}."
+    )
     summary = run_schedule(cfg, lambda: run_nightly(cfg))
-    click.echo(f"Stopped after {summary.runs} run(s), {summary.failures} failed, {summary.skipped} skipped.")
+    click.echo(
+        f"Stopped after {summary.runs} run(s), {summary.failures} failed, {summary.skipped} skipped."
+    )
 
 
 @main.command()
-@click.option("--dir", "demo_dir", default="demo_run", show_default=True, type=click.Path(file_okay=False),
-              help="Folder for the scenario, landing folders, store and outputs.")
+@click.option(
+    "--dir",
+    "demo_dir",
+    default="demo_run",
+    show_default=True,
+    type=click.Path(file_okay=False),
+    help="Folder for the scenario, landing folders, store and outputs.",
+)
 @click.option("--no-dashboard", is_flag=True, help="Stop after the pipeline and the audit pack.")
-@click.option("--port", type=int, default=8501, show_default=True, help="Dashboard port on 127.0.0.1.")
+@click.option(
+    "--port", type=int, default=8501, show_default=True, help="Dashboard port on 127.0.0.1."
+)
 @handles_user_errors
 def demo(demo_dir: str, no_dashboard: bool, port: int) -> None:
     """The Ostwyn Mutual scenario end to end: generate, nightly runs, alerts, audit, dashboard."""
@@ -416,10 +492,14 @@ def demo(demo_dir: str, no_dashboard: bool, port: int) -> None:
     result = run_demo(Path(demo_dir).resolve(), say=click.echo)
     alerts = result["alerts"]
     click.echo(f"\nStore and config: {result['config']}")
-    click.echo(f"Alerts: {len(alerts)} ({sum(a['state'] != 'resolved' for a in alerts)} not resolved):")
+    click.echo(
+        f"Alerts: {len(alerts)} ({sum(a['state'] != 'resolved' for a in alerts)} not resolved):"
+    )
     for a in alerts:
         if a["state"] != "resolved" and a["kind"] in ("forbidden_cue", "proxy_use"):
-            click.echo(f"  #{a['id']} {a['kind']} {a['decision_maker']} {a['cue']} since window ending {a['opened_window_end']}")
+            click.echo(
+                f"  #{a['id']} {a['kind']} {a['decision_maker']} {a['cue']} since window ending {a['opened_window_end']}"
+            )
     click.echo(
         "Forbidden-cue findings are statistical associations, not proof of intent or unlawful "
         "treatment; consult your compliance and legal advisers."

@@ -77,29 +77,38 @@ class Overview:
 
     ``rows``: one row per series (scope decision_maker, team, all) with n_decisions,
     n_linked, R_s, R_e, r_a, G, C, model_of_judge_r, window_start/end, R_s_trend (the
-    series' R_s over the period's windows, oldest first), open_alerts and why (the
-    open or acknowledged alerts as "kind cue" text).  ``flagged``: decision-makers with
-    an open or acknowledged alert and why, most alerts first.
+    series' defined R_s values over the period's windows, oldest first), open_alerts and
+    why (the open or acknowledged alerts as "kind cue" text).  ``flagged``:
+    decision-makers with an open or acknowledged alert and why, most alerts first.
+    ``period``: the window ends used; ``span``: the first and last stored window end
+    (None before the first refit); ``teams``: every team with fits.
     """
 
     rows: pd.DataFrame
     flagged: pd.DataFrame
-    period: tuple[date, date]
+    period: tuple[date, date] | None
+    span: tuple[date, date] | None
+    teams: list[str]
 
 
 def window_range(config: Config) -> tuple[date, date] | None:
     """First and last stored window end, or None before the first refit."""
-    (df,) = _query(config, ("SELECT min(window_end) AS lo, max(window_end) AS hi FROM fits", []))
+    (df,) = _query(config, (_SPAN_SQL, []))
+    return _span(df)
+
+
+_SPAN_SQL = "SELECT min(window_end) AS lo, max(window_end) AS hi FROM fits"
+_TEAMS_SQL = "SELECT DISTINCT decision_maker FROM fits WHERE scope = 'team' ORDER BY 1"
+
+
+def _span(df: pd.DataFrame) -> tuple[date, date] | None:
     if df.empty or pd.isna(df["lo"].iloc[0]):
         return None
     return pd.Timestamp(df["lo"].iloc[0]).date(), pd.Timestamp(df["hi"].iloc[0]).date()
 
 
 def teams(config: Config) -> list[str]:
-    (df,) = _query(
-        config,
-        ("SELECT DISTINCT decision_maker FROM fits WHERE scope = 'team' ORDER BY 1", []),
-    )
+    (df,) = _query(config, (_TEAMS_SQL, []))
     return df["decision_maker"].tolist()
 
 
@@ -113,10 +122,13 @@ def decision_makers(config: Config, team: str | None = None) -> pd.DataFrame:
     return df
 
 
-def overview(config: Config, period: tuple[date, date], team: str | None = None) -> Overview:
-    """Read only the fits and alerts tables (never raw decisions), so its cost does not
-    grow with the number of decisions stored."""
-    lo, hi = period
+def overview(
+    config: Config, period: tuple[date, date] | None = None, team: str | None = None
+) -> Overview:
+    """The page's data in one short connection; ``period`` None means every stored
+    window.  Reads only the fits and alerts tables (never raw decisions), so its cost
+    does not grow with the number of decisions stored."""
+    lo, hi = period if period else (date.min, date.max)
     series_filter = "TRUE"
     params: list = [lo, hi]
     if team:
@@ -131,7 +143,8 @@ def overview(config: Config, period: tuple[date, date], team: str | None = None)
                    R_s, R_e, r_a, G, C, model_of_judge_r, reason
             FROM fits WHERE window_end BETWEEN ? AND ? AND {series_filter}),
         trend AS (
-            SELECT scope, decision_maker, list(coalesce(R_s, 'NaN'::DOUBLE) ORDER BY window_end) AS R_s_trend
+            SELECT scope, decision_maker,
+                   list(R_s ORDER BY window_end) FILTER (WHERE isfinite(R_s)) AS R_s_trend
             FROM f GROUP BY scope, decision_maker)
         SELECT f.*, trend.R_s_trend FROM f JOIN trend USING (scope, decision_maker)
         QUALIFY row_number() OVER (PARTITION BY f.scope, f.decision_maker
@@ -140,11 +153,16 @@ def overview(config: Config, period: tuple[date, date], team: str | None = None)
         SELECT scope, decision_maker, count(*) AS open_alerts,
                string_agg(kind || coalesce(' ' || cue, ''), '; ' ORDER BY alert_id) AS why
         FROM alerts WHERE state IN ('open', 'acknowledged') GROUP BY scope, decision_maker"""
-    fits, alerts = _query(config, (fits_sql, params), (alerts_sql, []))
+    fits, alerts, span, team_df = _query(
+        config, (fits_sql, params), (alerts_sql, []), (_SPAN_SQL, []), (_TEAMS_SQL, [])
+    )
     rows = fits.merge(alerts, on=["scope", "decision_maker"], how="left")
     rows["open_alerts"] = rows["open_alerts"].fillna(0).astype(int)
     rows["why"] = rows["why"].fillna("")
-    rows["R_s_trend"] = rows["R_s_trend"].apply(lambda v: [float(x) for x in v])
+    # Windows where R_s is undefined are left out of the sparkline (it cannot draw gaps).
+    rows["R_s_trend"] = rows["R_s_trend"].apply(
+        lambda v: [] if v is None else [float(x) for x in v]
+    )
     order = {"decision_maker": 0, "team": 1, "all": 2}
     rows = rows.sort_values(
         ["scope", "decision_maker"], key=lambda s: s.map(order) if s.name == "scope" else s
@@ -153,7 +171,13 @@ def overview(config: Config, period: tuple[date, date], team: str | None = None)
     flagged = people[["decision_maker", "team", "open_alerts", "why"]].sort_values(
         ["open_alerts", "decision_maker"], ascending=[False, True]
     )
-    return Overview(rows=rows, flagged=flagged.reset_index(drop=True), period=(lo, hi))
+    return Overview(
+        rows=rows,
+        flagged=flagged.reset_index(drop=True),
+        period=tuple(period) if period else _span(span),
+        span=_span(span),
+        teams=team_df["decision_maker"].tolist(),
+    )
 
 
 # --- one decision-maker ---------------------------------------------------------------------

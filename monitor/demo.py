@@ -42,7 +42,13 @@ def prepare(demo_dir: Path, *, seed: int = 7, days: int = 730, n_handlers: int =
         fresh = True
     if fresh:
         generate(scenario, seed=seed, days=days, n_handlers=n_handlers)
-    for name in ("landing", "alerts.jsonl", "cuewatch.duckdb", "cuewatch.duckdb.wal", "cuewatch.duckdb.lock"):
+    for name in (
+        "landing",
+        "alerts.jsonl",
+        "cuewatch.duckdb",
+        "cuewatch.duckdb.wal",
+        "cuewatch.duckdb.lock",
+    ):
         p = demo_dir / name
         if p.is_dir():
             shutil.rmtree(p)
@@ -73,7 +79,11 @@ def play(config: Config, scenario: Path, *, say: Callable[[str], None] = print) 
     for i, batch in enumerate(batches):
         for _, files in batch:
             for f in files:
-                landing = config.decisions.landing if f.parent.name == "decisions" else config.outcomes.landing
+                landing = (
+                    config.decisions.landing
+                    if f.parent.name == "decisions"
+                    else config.outcomes.landing
+                )
                 shutil.copy2(f, Path(landing) / f.name)
         s = run_nightly(config)
         label = "backfill" if i == 0 else f"week {i:2d}"
@@ -92,8 +102,14 @@ def last_complete_quarter(day: date) -> str:
     return f"{day.year}Q{q}" if q else f"{day.year - 1}Q4"
 
 
-def run_demo(demo_dir: Path, *, say: Callable[[str], None] = print, export: bool = True,
-             days: int = 730, n_handlers: int = 36) -> dict:
+def run_demo(
+    demo_dir: Path,
+    *,
+    say: Callable[[str], None] = print,
+    export: bool = True,
+    days: int = 730,
+    n_handlers: int = 36,
+) -> dict:
     """The whole demo; returns what a test needs to check it."""
     say(f"Generating the Ostwyn Mutual scenario in {demo_dir / 'scenario'} ...")
     config = prepare(demo_dir, days=days, n_handlers=n_handlers)
@@ -113,8 +129,15 @@ def run_demo(demo_dir: Path, *, say: Callable[[str], None] = print, export: bool
 
             quarter = last_complete_quarter(load_truth(demo_dir / "scenario").last_decision_day)
             target = demo_dir / f"audit_{quarter}"
-            result = run_export(config, quarter=quarter, out_dir=target, as_of=None,
-                                formats=["csv", "parquet", "xlsx", "html"], include_rows=[], compare=None)
+            result = run_export(
+                config,
+                quarter=quarter,
+                out_dir=target,
+                as_of=None,
+                formats=["csv", "parquet", "xlsx", "html"],
+                include_rows=[],
+                compare=None,
+            )
             out["audit"] = str(target)
             say(f"Audit pack for {quarter}: {target} ({result.get('summary', '')[:200]})")
     return out

@@ -26,10 +26,29 @@ from monitor.policy import (
 )
 
 FINDING_COLUMNS = [
-    "check_kind", "scope", "decision_maker", "team", "cue", "level", "window_start",
-    "window_end", "n", "disparity", "direct", "indirect", "std_disparity", "std_weight",
-    "std_indirect", "ci_low", "ci_high", "p_value", "q_value", "statistic", "flagged",
-    "assessable", "reason",
+    "check_kind",
+    "scope",
+    "decision_maker",
+    "team",
+    "cue",
+    "level",
+    "window_start",
+    "window_end",
+    "n",
+    "disparity",
+    "direct",
+    "indirect",
+    "std_disparity",
+    "std_weight",
+    "std_indirect",
+    "ci_low",
+    "ci_high",
+    "p_value",
+    "q_value",
+    "statistic",
+    "flagged",
+    "assessable",
+    "reason",
 ]
 PROXY_COLUMNS = ["decision_maker", "cue", "level", "window_end", "proxy_cue", "part", "std_part"]
 JOINT = "(all cues)"
@@ -39,12 +58,16 @@ JOINT = "(all cues)"
 class StoredWindows:
     """The stored fits of one or more scopes, ordered by (scope, key, window_end)."""
 
-    meta: pd.DataFrame  # scope, decision_maker, team, window_start, window_end, n_decisions, n_linked, R_s, r_a
+    meta: (
+        pd.DataFrame
+    )  # scope, decision_maker, team, window_start, window_end, n_decisions, n_linked, R_s, r_a
     moments: Moments  # over (x, Ys)
     fits: LensFits  # judge model re-derived from the moments
 
 
-def load_windows(con, config: Config, scopes: tuple[str, ...] = ("decision_maker", "team")) -> StoredWindows:
+def load_windows(
+    con, config: Config, scopes: tuple[str, ...] = ("decision_maker", "team")
+) -> StoredWindows:
     names = config.design_columns()
     p = len(names) + 1
     placeholders = ", ".join("?" for _ in scopes)
@@ -56,7 +79,11 @@ def load_windows(con, config: Config, scopes: tuple[str, ...] = ("decision_maker
     ).df()
     m = len(df)
     mean = np.array(df["cue_mean"].tolist(), dtype=float).reshape(m, p) if m else np.zeros((0, p))
-    co = np.array(df["comoment"].tolist(), dtype=float).reshape(m, p, p) if m else np.zeros((0, p, p))
+    co = (
+        np.array(df["comoment"].tolist(), dtype=float).reshape(m, p, p)
+        if m
+        else np.zeros((0, p, p))
+    )
     moments = Moments(df["n_decisions"].to_numpy(dtype=float), mean, co)
     fits = fit_lens(moments, None, names, min_rows=config.policy.min_rows)
     meta = df.drop(columns=["cue_mean", "comoment"]).reset_index(drop=True)
@@ -92,7 +119,9 @@ def forbidden_findings(config: Config, w: StoredWindows) -> tuple[pd.DataFrame, 
     flags = flag_forbidden(decomps, tolerance=tol, fdr=config.policy.fdr, family=family)
     proxy_tol = config.policy.proxy_tolerance or tol
     if proxy_tol != tol:
-        flags_proxy = flag_forbidden(decomps, tolerance=proxy_tol, fdr=config.policy.fdr, family=family)
+        flags_proxy = flag_forbidden(
+            decomps, tolerance=proxy_tol, fdr=config.policy.fdr, family=family
+        )
     else:
         flags_proxy = flags
     names = list(w.fits.names)
@@ -103,7 +132,9 @@ def forbidden_findings(config: Config, w: StoredWindows) -> tuple[pd.DataFrame, 
             col = names.index(column)
             scale = _std_scale(w, col)[idx]
             for kind in ("forbidden_direct", "forbidden_proxy"):
-                rows = _base_rows(w.meta.iloc[idx].reset_index(drop=True), np.arange(len(idx)), kind)
+                rows = _base_rows(
+                    w.meta.iloc[idx].reset_index(drop=True), np.arange(len(idx)), kind
+                )
                 rows["cue"] = d.cue
                 rows["level"] = level
                 rows["disparity"] = d.disparity[:, j]
@@ -186,7 +217,11 @@ def drift_findings(config: Config, w: StoredWindows) -> pd.DataFrame:
         rows["statistic"] = drift.z[:, j]
         ok = np.isfinite(drift.p_value[:, j])
         with np.errstate(invalid="ignore"):
-            rows["flagged"] = ok & (drift.p_value[:, j] < alpha) & (np.abs(rows["std_weight"].to_numpy()) >= min_std)
+            rows["flagged"] = (
+                ok
+                & (drift.p_value[:, j] < alpha)
+                & (np.abs(rows["std_weight"].to_numpy()) >= min_std)
+            )
         rows["assessable"] = ok
         rows["reason"] = [r or None for r in drift.reason]
         frames.append(rows)
@@ -245,6 +280,8 @@ def evaluate(con, config: Config) -> tuple[pd.DataFrame, pd.DataFrame]:
     forbidden, proxies = forbidden_findings(config, w)
     parts = [forbidden, drift_findings(config, w), floor_findings(config, w)]
     parts = [p for p in parts if len(p)]
-    findings = pd.concat(parts, ignore_index=True) if parts else pd.DataFrame(columns=FINDING_COLUMNS)
+    findings = (
+        pd.concat(parts, ignore_index=True) if parts else pd.DataFrame(columns=FINDING_COLUMNS)
+    )
     findings = findings.reindex(columns=FINDING_COLUMNS)
     return findings, proxies

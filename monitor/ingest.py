@@ -45,6 +45,10 @@ FORMATS = {
 }
 
 
+# DuckDB's working-memory cap during ingest (measured: benchmarks/README.md).
+INGEST_MEMORY_LIMIT = "512MB"
+
+
 class IngestUsageError(Exception):
     """A user error in the ingest command itself (bad path, unknown kind, ...)."""
 
@@ -227,6 +231,10 @@ def ingest(
         results: list[FileResult] = []
         with store.writer() as con:
             store.ensure_ready(con)
+            # Staging tables of a large file would otherwise grow in memory up to
+            # DuckDB's default limit (80% of RAM); past this limit they spill to the
+            # store's temporary folder (<store>.tmp), which keeps peak RSS bounded.
+            con.execute(f"SET memory_limit = {sql_literal(INGEST_MEMORY_LIMIT)}")
             for i, (path, k) in enumerate(plan):
                 if on_file:
                     on_file(i, len(plan), path)
@@ -283,8 +291,19 @@ def _ingest_one(
         batch_id = con.execute("SELECT nextval('batch_ids')").fetchone()[0]
         con.execute(
             "INSERT INTO batches VALUES (?, ?, ?, ?, ?, ?, 0, 0, 0, 0, ?, ?, 'failed', ?, ?, ?)",
-            [batch_id, kind, label, sha, size, path.suffix.lstrip(".") or "?", started,
-             utc_now(), message, config.digest, __version__],
+            [
+                batch_id,
+                kind,
+                label,
+                sha,
+                size,
+                path.suffix.lstrip(".") or "?",
+                started,
+                utc_now(),
+                message,
+                config.digest,
+                __version__,
+            ],
         )
         return FileResult(label, kind, "failed", batch_id=batch_id, message=message)
     finally:
@@ -308,7 +327,9 @@ def _stage(
     checks.require_columns(present, label)
 
     # 1. Stage the needed columns as text, in file order (rowid = record ordinal).
-    con.execute(f"CREATE TEMP TABLE _raw AS {reader_sql(config, path, fmt, checks.columns, present)}")
+    con.execute(
+        f"CREATE TEMP TABLE _raw AS {reader_sql(config, path, fmt, checks.columns, present)}"
+    )
     rejected_lines = _stage_csv_rejects(con) if fmt == "csv" else 0
 
     # 2. Parse and check every record in one set-based pass.
@@ -319,8 +340,14 @@ def _stage(
         horizon = now + timedelta(hours=config.ingest.future_tolerance_hours)
         con.execute(
             "CREATE TEMP TABLE _checked AS "
-            + checks.checked_sql(horizon=horizon, earliest=config.ingest.earliest, fmt=fmt)
+            + checks.checked_sql(
+                horizon=horizon,
+                earliest=config.ingest.earliest,
+                fmt=fmt,
+                csv_rejects=rejected_lines > 0,
+            )
         )
+        con.execute("DROP TABLE _raw")  # no longer needed: free its memory now
     finally:
         if tz != config.decisions.timezone:
             con.execute(f"SET TimeZone = {sql_literal(config.decisions.timezone)}")
@@ -349,7 +376,7 @@ def _write_batch(
     ingested_at = utc_now()
     accepted = con.execute(checks.insert_sql(batch_id, ingested_at)).fetchone()
     accepted = int(accepted[0]) if accepted else 0
-    con.execute(checks.quarantine_sql(batch_id, ingested_at))
+    con.execute(checks.quarantine_sql(batch_id, ingested_at, fmt))
     if rejected_lines:
         con.execute(
             "INSERT INTO quarantine SELECT ?, ?, line, NULL, 'malformed_record', "
@@ -379,17 +406,39 @@ def _write_batch(
         )
     con.execute(
         "INSERT INTO batches VALUES (?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, 'ingested', NULL, ?, ?)",
-        [batch_id, kind, label, sha, size, fmt, rows_read, accepted, quarantined, duplicates,
-         started, utc_now(), config.digest, __version__],
+        [
+            batch_id,
+            kind,
+            label,
+            sha,
+            size,
+            fmt,
+            rows_read,
+            accepted,
+            quarantined,
+            duplicates,
+            started,
+            utc_now(),
+            config.digest,
+            __version__,
+        ],
     )
     return FileResult(
-        label, kind, "ingested", batch_id=batch_id, rows_read=rows_read, accepted=accepted,
-        quarantined=quarantined, duplicates=duplicates,
+        label,
+        kind,
+        "ingested",
+        batch_id=batch_id,
+        rows_read=rows_read,
+        accepted=accepted,
+        quarantined=quarantined,
+        duplicates=duplicates,
         quarantine_reasons=dict(sorted(reasons.items())),
     )
 
 
-def _present_columns(con: duckdb.DuckDBPyConnection, config: Config, path: Path, fmt: str) -> list[str]:
+def _present_columns(
+    con: duckdb.DuckDBPyConnection, config: Config, path: Path, fmt: str
+) -> list[str]:
     """The columns the file offers (CSV header / Parquet schema); JSON Lines is open (empty)."""
     if fmt == "jsonl":
         return []  # keys are looked up per record; a missing key is a missing field
@@ -420,7 +469,9 @@ def _stage_csv_rejects(con: duckdb.DuckDBPyConnection) -> int:
             "first(csv_line) AS csv_line FROM _reject_errors GROUP BY line"
         )
     except duckdb.CatalogException:
-        con.execute("CREATE TEMP TABLE _rejects (line BIGINT, error_message VARCHAR, csv_line VARCHAR)")
+        con.execute(
+            "CREATE TEMP TABLE _rejects (line BIGINT, error_message VARCHAR, csv_line VARCHAR)"
+        )
     return int(con.execute("SELECT count(*) FROM _rejects").fetchone()[0])
 
 

@@ -102,21 +102,38 @@ class Checks:
             return f"(CASE WHEN TRY_CAST({v} AS DOUBLE) IN (0, 1) THEN TRY_CAST({v} AS DOUBLE) END)"
         return f"(CASE WHEN isfinite(TRY_CAST({v} AS DOUBLE)) THEN TRY_CAST({v} AS DOUBLE) END)"
 
-    def _value_checks(self, c: FileColumn, values: dict, rng, prefix: str) -> list[tuple[str, str, str]]:
+    def _value_checks(
+        self, c: FileColumn, values: dict, rng, prefix: str
+    ) -> list[tuple[str, str, str]]:
         v = _v(c.alias)
         parsed = f"p_{c.alias}"
         out = [(f"{v} IS NULL", "missing_field", f"'{c.source} is empty'")]
         if values:
             keys = ", ".join(lit(k) for k in values)
-            out.append((f"{parsed} IS NULL", f"{prefix}_not_in_map",
-                        f"'{c.source}=' || {_shown(c.alias)} || ' is not one of {keys.replace(chr(39), '')}'"))
+            out.append(
+                (
+                    f"{parsed} IS NULL",
+                    f"{prefix}_not_in_map",
+                    f"'{c.source}=' || {_shown(c.alias)} || ' is not one of {keys.replace(chr(39), '')}'",
+                )
+            )
         else:
-            out.append((f"{parsed} IS NULL", f"{prefix}_not_numeric",
-                        f"'{c.source}=' || {_shown(c.alias)} || ' is not a number'"))
+            out.append(
+                (
+                    f"{parsed} IS NULL",
+                    f"{prefix}_not_numeric",
+                    f"'{c.source}=' || {_shown(c.alias)} || ' is not a number'",
+                )
+            )
         if rng is not None:
             lo, hi = float(rng[0]), float(rng[1])
-            out.append((f"{parsed} NOT BETWEEN {lo!r} AND {hi!r}", f"{prefix}_out_of_range",
-                        f"'{c.source}=' || {_shown(c.alias)} || ' is outside [{lo:g}, {hi:g}]'"))
+            out.append(
+                (
+                    f"{parsed} NOT BETWEEN {lo!r} AND {hi!r}",
+                    f"{prefix}_out_of_range",
+                    f"'{c.source}=' || {_shown(c.alias)} || ' is outside [{lo:g}, {hi:g}]'",
+                )
+            )
         return out
 
     def _cue_checks(self, c: FileColumn, cue: CueConfig) -> list[tuple[str, str, str]]:
@@ -125,27 +142,77 @@ class Checks:
         src = c.source.replace("'", "''")
         out = [(f"{v} IS NULL", "missing_field", f"'{src} is empty'")]
         if cue.type == "numeric":
-            out.append((f"{parsed} IS NULL", "cue_not_numeric",
-                        f"'{src}=' || {_shown(c.alias)} || ' is not a number'"))
+            out.append(
+                (
+                    f"{parsed} IS NULL",
+                    "cue_not_numeric",
+                    f"'{src}=' || {_shown(c.alias)} || ' is not a number'",
+                )
+            )
             if cue.range is not None:
                 lo, hi = float(cue.range[0]), float(cue.range[1])
-                out.append((f"{parsed} NOT BETWEEN {lo!r} AND {hi!r}", "cue_out_of_range",
-                            f"'{src}=' || {_shown(c.alias)} || ' is outside [{lo:g}, {hi:g}]'"))
+                out.append(
+                    (
+                        f"{parsed} NOT BETWEEN {lo!r} AND {hi!r}",
+                        "cue_out_of_range",
+                        f"'{src}=' || {_shown(c.alias)} || ' is outside [{lo:g}, {hi:g}]'",
+                    )
+                )
         elif cue.type == "binary":
             allowed = ", ".join(cue.values) if cue.values else "0, 1"
-            out.append((f"{parsed} IS NULL", "binary_not_in_map",
-                        f"'{src}=' || {_shown(c.alias)} || ' is not one of {allowed.replace(chr(39), '')}'"))
+            out.append(
+                (
+                    f"{parsed} IS NULL",
+                    "binary_not_in_map",
+                    f"'{src}=' || {_shown(c.alias)} || ' is not one of {allowed.replace(chr(39), '')}'",
+                )
+            )
         else:
             allowed = ", ".join(cue.levels)
-            out.append((f"{parsed} IS NULL", "undeclared_level",
-                        f"'{src}=' || {_shown(c.alias)} || ' is not a declared level ({allowed.replace(chr(39), '')})'"))
+            out.append(
+                (
+                    f"{parsed} IS NULL",
+                    "undeclared_level",
+                    f"'{src}=' || {_shown(c.alias)} || ' is not a declared level ({allowed.replace(chr(39), '')})'",
+                )
+            )
         return out
 
-    def checked_sql(self, *, horizon: datetime, earliest: str, fmt: str) -> str:
-        """SELECT over _raw giving parsed columns, a reason code and a message per record."""
+    def checked_sql(
+        self, *, horizon: datetime, earliest: str, fmt: str, csv_rejects: bool = True
+    ) -> str:
+        """SELECT over _raw giving parsed columns and a reason code per record.
+
+        ``csv_rejects``: whether the CSV reader rejected any line (when it did not, a
+        record's line number is simply its ordinal + 2).  The raw record is kept as
+        text columns (and raw_line for JSON Lines); its JSON form and the message are
+        built only for quarantined records, in ``quarantine_sql`` (message is NULL
+        here unless a later step sets it)."""
+        parsed, checks = self._parse_and_checks(horizon, earliest)
+        reason = "CASE " + " ".join(f"WHEN {w} THEN '{r}'" for w, r, _ in checks) + " END"
+        line = self._line_expr(fmt, csv_rejects)
+        # The parsed values are materialised once: inlined into the long CASE chain
+        # they would be re-computed for every reference.
+        return (
+            f"WITH parsed AS MATERIALIZED (SELECT rowid AS ord, *, {', '.join(parsed)} FROM _raw) "
+            f"SELECT ord, {line} AS source_line, is_blank, raw_line, "
+            f"{', '.join(c.alias for c in self.columns)}, parsed.* EXCLUDE (ord, is_blank, is_malformed, raw_line, {', '.join(c.alias for c in self.columns)}), "
+            f"{reason} AS reason, NULL::VARCHAR AS message, false AS is_duplicate "
+            f"FROM parsed"
+        )
+
+    def _parse_and_checks(
+        self, horizon: datetime | None, earliest: str
+    ) -> tuple[list[str], list[tuple[str, str, str]]]:
+        """The parsing expressions and the ordered (condition, reason, message) checks.
+        ``horizon`` None: the future check's condition is left out (message use only)."""
         parsed: list[str] = []
         checks: list[tuple[str, str, str]] = [
-            ("is_malformed", "malformed_record", "'not a JSON object: ' || left(coalesce(raw_line, ''), 200)"),
+            (
+                "is_malformed",
+                "malformed_record",
+                "'not a JSON object: ' || left(coalesce(raw_line, ''), 200)",
+            ),
         ]
         for c in self.columns:
             v = _v(c.alias)
@@ -156,14 +223,23 @@ class Checks:
             elif c.role == "time":
                 parsed.append(f"TRY_CAST({v} AS TIMESTAMPTZ) AS p_{c.alias}")
                 checks.append((f"{v} IS NULL", "missing_field", f"'{c.source} is empty'"))
-                checks.append((f"p_{c.alias} IS NULL", "unparseable_timestamp",
-                               f"'{c.source}=' || {_shown(c.alias)} || ' is not a timestamp'"))
-                checks.append((
-                    f"p_{c.alias} > {lit(horizon.isoformat())}::TIMESTAMPTZ "
-                    f"OR p_{c.alias} < {lit(earliest)}::TIMESTAMPTZ",
-                    "implausible_timestamp",
-                    f"'{c.source}=' || {_shown(c.alias)} || ' is in the future or before {earliest}'",
-                ))
+                checks.append(
+                    (
+                        f"p_{c.alias} IS NULL",
+                        "unparseable_timestamp",
+                        f"'{c.source}=' || {_shown(c.alias)} || ' is not a timestamp'",
+                    )
+                )
+                checks.append(
+                    (
+                        "true"
+                        if horizon is None
+                        else f"p_{c.alias} > {lit(horizon.isoformat())}::TIMESTAMPTZ "
+                        f"OR p_{c.alias} < {lit(earliest)}::TIMESTAMPTZ",
+                        "implausible_timestamp",
+                        f"'{c.source}=' || {_shown(c.alias)} || ' is in the future or before {earliest}'",
+                    )
+                )
             elif c.role == "value":
                 values, rng, prefix = self._value_spec()
                 parsed.append(f"{self._value_expr(c.alias, values)} AS p_{c.alias}")
@@ -172,16 +248,7 @@ class Checks:
                 cue = self.config.cues[c.cue]
                 parsed.append(f"{self._cue_expr(c, cue)} AS p_{c.alias}")
                 checks.extend(self._cue_checks(c, cue))
-        reason = "CASE " + " ".join(f"WHEN {w} THEN '{r}'" for w, r, _ in checks) + " END"
-        message = "CASE " + " ".join(f"WHEN {w} THEN {m}" for w, _, m in checks) + " END"
-        raw_json = self._raw_json_expr(fmt)
-        line = self._line_expr(fmt)
-        return (
-            f"SELECT ord, {line} AS source_line, is_blank, {raw_json} AS raw_row, "
-            f"{', '.join(c.alias for c in self.columns)}, parsed.* EXCLUDE (ord, is_blank, is_malformed, raw_line, {', '.join(c.alias for c in self.columns)}), "
-            f"{reason} AS reason, {message} AS message, false AS is_duplicate "
-            f"FROM (SELECT rowid AS ord, *, {', '.join(parsed)} FROM _raw) AS parsed"
-        )
+        return parsed, checks
 
     def _value_spec(self):
         if self.kind == "decisions":
@@ -194,15 +261,20 @@ class Checks:
         # raw_row is always JSON text: the record itself, or (when it is not a JSON
         # object) the line as a JSON string, so json.loads gives back the exact text.
         if fmt == "jsonl":
-            return "CASE WHEN is_malformed THEN CAST(to_json(raw_line) AS VARCHAR) ELSE raw_line END"
+            return (
+                "CASE WHEN reason = 'malformed_record' THEN CAST(to_json(raw_line) AS VARCHAR) "
+                "ELSE raw_line END"
+            )
         pairs = ", ".join(f"{lit(c.source)}, {c.alias}" for c in self.columns)
         return f"CAST(json_object({pairs}) AS VARCHAR)"
 
-    def _line_expr(self, fmt: str) -> str:
+    def _line_expr(self, fmt: str, csv_rejects: bool = True) -> str:
         if fmt == "jsonl":
             return "ord + 1"
         if fmt == "parquet":
             return "ord + 1"
+        if not csv_rejects:  # the common case; the subquery below costs a join per file
+            return "ord + 2"
         # CSV: the header is line 1; lines the reader rejected shift later records.
         return (
             "ord + 2 + (SELECT count(*) FROM (SELECT line - row_number() OVER (ORDER BY line) AS t "
@@ -257,9 +329,7 @@ class Checks:
                 f"AND NOT c.is_duplicate AND NOT c.is_blank"
             )
         same = self._compare("c", "f", False)
-        in_file_conflict = (
-            "'id ' || c.{id} || ' appears earlier in this file (line ' || f.source_line || ') with different content'"
-        ).format(id=idc)
+        in_file_conflict = f"'id ' || c.{idc} || ' appears earlier in this file (line ' || f.source_line || ') with different content'"
         within = (
             f"UPDATE _checked AS c SET is_duplicate = ({same}), "
             f"reason = CASE WHEN ({same}) THEN NULL ELSE "
@@ -285,6 +355,9 @@ class Checks:
     # --- writing ---------------------------------------------------------------------
 
     def insert_sql(self, batch_id: int, ingested_at: datetime) -> str:
+        # No ORDER BY: a filtered scan keeps _checked's (file) order while DuckDB's
+        # preserve_insertion_order is on (the default), and a sort of every accepted
+        # row was a large share of the ingest time.
         ok = "reason IS NULL AND NOT is_duplicate AND NOT is_blank"
         ts = f"p_{self.col('time').alias}"
         if self.kind == "decisions":
@@ -298,22 +371,37 @@ class Checks:
                 f"SELECT p_{self.col('id').alias}, {ts}, CAST({ts} AS DATE), "
                 f"p_{self.col('maker').alias}, {team}, p_{self.col('value').alias}, {batch_id}, "
                 f"{lit(ingested_at.isoformat())}::TIMESTAMPTZ, source_line, {vals} "
-                f"FROM _checked WHERE {ok} ORDER BY ord"
+                f"FROM _checked WHERE {ok}"
             )
         return (
             f"INSERT INTO outcomes (decision_id, observed_at, criterion, batch_id, ingested_at, source_line) "
             f"SELECT p_{self.col('id').alias}, {ts}, p_{self.col('value').alias}, {batch_id}, "
-            f"{lit(ingested_at.isoformat())}::TIMESTAMPTZ, source_line FROM _checked WHERE {ok} ORDER BY ord"
+            f"{lit(ingested_at.isoformat())}::TIMESTAMPTZ, source_line FROM _checked WHERE {ok}"
         )
 
     def _team_expr(self) -> str:
         team = [c for c in self.columns if c.role == "team"]
         return f"p_{team[0].alias}" if team else "NULL"
 
-    def quarantine_sql(self, batch_id: int, ingested_at: datetime) -> str:
+    def _message_expr(self) -> str:
+        """The one-line message of a quarantined record, from its reason and values.
+        Built here rather than for every record: most records need none."""
+        _, checks = self._parse_and_checks(None, self.config.ingest.earliest)
+        counts: dict[str, int] = {}
+        for _, r, _ in checks:
+            counts[r] = counts.get(r, 0) + 1
+        whens = " ".join(
+            f"WHEN reason = '{r}' THEN {m}"
+            if counts[r] == 1
+            else f"WHEN reason = '{r}' AND {w} THEN {m}"
+            for w, r, m in checks
+        )
+        return f"coalesce(message, CASE {whens} END, reason)"
+
+    def quarantine_sql(self, batch_id: int, ingested_at: datetime, fmt: str) -> str:
         return (
             f"INSERT INTO quarantine SELECT {batch_id}, {lit(self.kind)}, source_line, "
-            f"p_{self.col('id').alias}, reason, message, raw_row, "
+            f"p_{self.col('id').alias}, reason, {self._message_expr()}, {self._raw_json_expr(fmt)}, "
             f"{lit(ingested_at.isoformat())}::TIMESTAMPTZ "
             f"FROM _checked WHERE reason IS NOT NULL AND NOT is_blank ORDER BY ord"
         )
@@ -363,12 +451,15 @@ def build_checks(config: Config, kind: str) -> Checks:
     return Checks(config, kind, cols, tz)
 
 
-def reader_sql(config: Config, path: Path, fmt: str, columns: list[FileColumn], present: list[str]) -> str:
+def reader_sql(
+    config: Config, path: Path, fmt: str, columns: list[FileColumn], present: list[str]
+) -> str:
     """SELECT staging the needed columns as text, plus is_blank / is_malformed / raw_line."""
     p = lit(str(path))
     if fmt == "jsonl":
         keys = ", ".join(
-            f"json_extract_string(obj, {lit('$.' + _json_key(c.source))}) AS {c.alias}" for c in columns
+            f"json_extract_string(obj, {lit('$.' + _json_key(c.source))}) AS {c.alias}"
+            for c in columns
         )
         return (
             # json_type() raises on text that is not JSON, and AND does not short-circuit

@@ -13,7 +13,7 @@ from dataclasses import dataclass, field
 from datetime import datetime
 
 from monitor.config import Config
-from monitor.store import Store, utc_now
+from monitor.store import Store, StoreMismatch, utc_now
 
 log = logging.getLogger("cuewatch.nightly")
 
@@ -51,11 +51,14 @@ def run_nightly(config: Config, *, now: datetime | None = None) -> NightlySummar
         failed = result.failed_files
         summary.status = "ok" if not failed else "ok_with_failed_files"
         if failed:
-            summary.message = f"{len(failed)} file(s) failed; first: {failed[0].path}: {failed[0].message}"
+            summary.message = (
+                f"{len(failed)} file(s) failed; first: {failed[0].path}: {failed[0].message}"
+            )
     except Exception as exc:
         summary.status = "failed"
         summary.message = str(exc).splitlines()[0] if str(exc) else type(exc).__name__
-        _record(store, run_id, started, summary)
+        if not isinstance(exc, StoreMismatch):  # a store that is not ready cannot hold it
+            _record(store, run_id, started, summary)
         raise
     _record(store, run_id, started, summary)
     return summary
@@ -65,5 +68,6 @@ def _record(store: Store, run_id: str, started, summary: NightlySummary) -> None
     try:
         with store.writer() as con:
             store.record_run(con, run_id, "nightly", started, summary.status, summary.message)
-    except Exception:  # recording must never hide the run's own outcome
-        log.exception("could not record the nightly run")
+    except Exception as exc:  # recording must never hide the run's own outcome
+        # One line, no traceback: the run's own error (if any) is what the user must see.
+        log.warning("could not record the nightly run in the store: %s", exc)

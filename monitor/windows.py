@@ -26,7 +26,7 @@ import pandas as pd
 from monitor import __version__
 from monitor.config import Config
 from monitor.lens import LensFits, fit_lens, fit_lens_rows, replace_rows, stack
-from monitor.moments import Moments, window_sums
+from monitor.moments import Moments, fixed_window_sums, segment_sums
 from monitor.moments_sql import MomentLayout, design_expressions, moments_sql
 from monitor.store import Store, quote_ident, sql_literal, utc_now
 
@@ -77,9 +77,7 @@ def _get_fact(con: duckdb.DuckDBPyConnection, key: str) -> str | None:
 
 
 def _set_fact(con: duckdb.DuckDBPyConnection, key: str, value: str) -> None:
-    con.execute(
-        "INSERT OR REPLACE INTO store_facts VALUES (?, ?, ?)", [key, value, utc_now()]
-    )
+    con.execute("INSERT OR REPLACE INTO store_facts VALUES (?, ?, ?)", [key, value, utc_now()])
 
 
 def _bucket_insert_sql(config: Config, where: str, restrict: bool) -> str:
@@ -134,7 +132,9 @@ class Series:
     linked: Moments
 
 
-def _group_series(base: Series, scope: str, group_of_entity: np.ndarray, keys: np.ndarray) -> Series:
+def _group_series(
+    base: Series, scope: str, group_of_entity: np.ndarray, keys: np.ndarray
+) -> Series:
     """Merge a finer series into coarser entities (e.g. decision-makers into teams)."""
     g = group_of_entity[base.entity]
     order = np.lexsort((base.day, g))
@@ -142,9 +142,10 @@ def _group_series(base: Series, scope: str, group_of_entity: np.ndarray, keys: n
     boundary = np.ones(len(order), dtype=bool)
     boundary[1:] = (g_sorted[1:] != g_sorted[:-1]) | (d_sorted[1:] != d_sorted[:-1])
     starts = np.flatnonzero(boundary)
-    stops = np.append(starts[1:], len(order))
-    all_rows = window_sums(base.all_rows.take(order), starts, stops)
-    linked = window_sums(base.linked.take(order), starts, stops)
+    # Each (group, day) is a short run of consecutive buckets: sequential merges
+    # within runs cost one pass per member, far less than a range tree over all.
+    all_rows = segment_sums(base.all_rows.take(order), boundary)
+    linked = segment_sums(base.linked.take(order), boundary)
     teams = keys if scope == "team" else np.array([None] * len(keys), dtype=object)
     return Series(scope, keys, teams, g_sorted[starts], d_sorted[starts], all_rows, linked)
 
@@ -157,7 +158,11 @@ def build_series(frame: dict[str, np.ndarray], layout: MomentLayout) -> dict[str
     order = np.lexsort((days, dm))
     dm, days, team = dm[order], days[order], team[order]
     all_rows, linked = layout.to_moments({k: np.asarray(v)[order] for k, v in frame.items()})
-    keys, entity = np.unique(dm, return_inverse=True) if len(dm) else (np.array([], dtype=object), np.array([], dtype=int))
+    keys, entity = (
+        np.unique(dm, return_inverse=True)
+        if len(dm)
+        else (np.array([], dtype=object), np.array([], dtype=int))
+    )
     # A decision-maker's team: the one on their latest bucket.
     last = np.zeros(len(keys), dtype=int)
     if len(dm):
@@ -170,7 +175,15 @@ def build_series(frame: dict[str, np.ndarray], layout: MomentLayout) -> dict[str
     out = {"decision_maker": per_dm}
     if len(team_keys):
         sub = np.flatnonzero(has_team[entity])
-        base = Series("decision_maker", keys, teams, entity[sub], days[sub], all_rows.take(sub), linked.take(sub))
+        base = Series(
+            "decision_maker",
+            keys,
+            teams,
+            entity[sub],
+            days[sub],
+            all_rows.take(sub),
+            linked.take(sub),
+        )
         group = np.array([team_index.get(t, -1) for t in teams])
         out["team"] = _group_series(base, "team", group, team_keys)
     if len(keys):
@@ -212,14 +225,23 @@ def plan_windows(
     return ent[nonempty], end[nonempty], start[nonempty], stop[nonempty]
 
 
+def window_moments(config: Config, series: Series, ent, end) -> tuple[Moments, Moments]:
+    """(all rows, linked rows) statistics of the windows (entity index, end day)."""
+    length = config.windows.length_days
+    return (
+        fixed_window_sums(series.all_rows, series.entity, series.day, ent, end, length),
+        fixed_window_sums(series.linked, series.entity, series.day, ent, end, length),
+    )
+
+
 def fit_series(
-    config: Config, series: Series, ent, end, start, stop, raw_rows=None
+    config: Config, series: Series, ent, end, start, stop, raw_rows=None, windows=None
 ) -> tuple[LensFits, np.ndarray]:
     """Fit every planned window of one series; returns the fits and a method label
-    per window ("moments" or "qr")."""
+    per window ("moments" or "qr").  ``windows``: their statistics if already merged
+    (``window_moments``)."""
     names = config.design_columns()
-    all_w = window_sums(series.all_rows, start, stop)
-    link_w = window_sums(series.linked, start, stop)
+    all_w, link_w = windows if windows is not None else window_moments(config, series, ent, end)
     min_rows = config.windows.min_rows
     fits = fit_lens(all_w, link_w, names, min_rows=min_rows)
     method = np.array(["moments"] * fits.size, dtype=object)
@@ -290,7 +312,9 @@ def _refit_full(con, config: Config, sig: str) -> RefitSummary:
     con.execute("DROP TABLE IF EXISTS bucket_stats")
     con.execute(_bucket_table_sql(layout))
     con.execute(_bucket_insert_sql(config, "TRUE", restrict=False))
-    n_dirty = con.execute("SELECT count(*) FROM (SELECT DISTINCT decision_maker, day FROM dirty_buckets)").fetchall()[0][0]
+    n_dirty = con.execute(
+        "SELECT count(*) FROM (SELECT DISTINCT decision_maker, day FROM dirty_buckets)"
+    ).fetchall()[0][0]
     con.execute("DELETE FROM dirty_buckets")
     con.execute("DELETE FROM fits")
     con.execute("DELETE FROM cue_weights")
@@ -298,7 +322,7 @@ def _refit_full(con, config: Config, sig: str) -> RefitSummary:
     n_buckets = len(frame["day_number"])
     last_day = _last_day(con)
     fitted = refitted = 0
-    for scope, series in build_series(frame, layout).items():
+    for _scope, series in build_series(frame, layout).items():
         ent, end, start, stop = plan_windows(config, series, None, last_day)
         fitted_n, refit_n = _fit_and_write(con, config, sig, series, ent, end, start, stop)
         fitted += fitted_n
@@ -324,9 +348,7 @@ def _refit_incremental(con, config: Config, sig: str) -> RefitSummary:
             "DELETE FROM bucket_stats b USING _dirty x "
             "WHERE b.decision_maker = x.decision_maker AND b.day = x.day"
         )
-        where = (
-            "(d.decision_maker, d.decided_day) IN (SELECT (decision_maker, day) FROM _dirty)"
-        )
+        where = "(d.decision_maker, d.decided_day) IN (SELECT (decision_maker, day) FROM _dirty)"
         where = "EXISTS (SELECT 1 FROM _dirty x WHERE x.decision_maker = d.decision_maker AND x.day = d.decided_day)"
         con.execute(_bucket_insert_sql(config, where, restrict=True))
         dirty = con.execute(
@@ -358,8 +380,25 @@ def _refit_incremental(con, config: Config, sig: str) -> RefitSummary:
         if t is not None:
             wanted["team"].setdefault(t, set()).update(endset)
         wanted["all"].setdefault(ALL_KEY, set()).update(endset)
-        lo = min(lo, int(ends.min()) - length + 1) if lo is not None else int(ends.min()) - length + 1
+        lo = (
+            min(lo, int(ends.min()) - length + 1)
+            if lo is not None
+            else int(ends.min()) - length + 1
+        )
         hi = max(hi, int(ends.max())) if hi is not None else int(ends.max())
+    # A full refit gives every series a window up to the newest aligned end, even a
+    # decision-maker with nothing new: when the newest end moves on, add it for all.
+    fresh = _new_window_ends(con, config, last_day)
+    if len(fresh):
+        endset = {int(e) for e in fresh}
+        for dm, team in teams_of.items():
+            wanted["decision_maker"].setdefault(dm, set()).update(endset)
+            if team is not None:
+                wanted["team"].setdefault(team, set()).update(endset)
+        wanted["all"].setdefault(ALL_KEY, set()).update(endset)
+        first = int(fresh.min()) - length + 1
+        lo = first if lo is None else min(lo, first)
+        hi = int(fresh.max()) if hi is None else max(hi, int(fresh.max()))
     if lo is None:
         return RefitSummary("incremental", int(n_dirty), len(dirty), 0, 0, 0.0)
     frame = _fetch_buckets(con, layout, (lo, hi))
@@ -374,12 +413,26 @@ def _refit_incremental(con, config: Config, sig: str) -> RefitSummary:
     return RefitSummary("incremental", int(n_dirty), len(dirty), fitted, refitted, 0.0)
 
 
+def _new_window_ends(con, config: Config, last_day: int) -> np.ndarray:
+    """Aligned window ends after the newest stored one, up to the one covering last_day."""
+    row = con.execute("SELECT (max(window_end) - DATE '1970-01-01')::BIGINT FROM fits").fetchone()
+    newest = aligned_ends(config, last_day, last_day)[-1]
+    if row[0] is None or row[0] >= newest:
+        return np.array([], dtype=np.int64)
+    ends = aligned_ends(config, int(row[0]) + 1, int(newest))
+    return ends[(ends > row[0]) & (ends <= newest)]
+
+
 def _last_day(con) -> int:
-    row = con.execute("SELECT (max(day) - DATE '1970-01-01')::BIGINT FROM bucket_stats").fetchall()[0]
+    row = con.execute("SELECT (max(day) - DATE '1970-01-01')::BIGINT FROM bucket_stats").fetchall()[
+        0
+    ]
     return int(row[0]) if row[0] is not None else 0
 
 
-def _fetch_buckets(con, layout: MomentLayout, day_range: tuple[int, int] | None) -> dict[str, np.ndarray]:
+def _fetch_buckets(
+    con, layout: MomentLayout, day_range: tuple[int, int] | None
+) -> dict[str, np.ndarray]:
     cols = ", ".join(layout.columns())
     where = ""
     params: list = []
@@ -391,7 +444,10 @@ def _fetch_buckets(con, layout: MomentLayout, day_range: tuple[int, int] | None)
         f"FROM bucket_stats {where} ORDER BY decision_maker, day",
         params,
     ).fetchnumpy()
-    return {k: (v.filled(np.nan) if hasattr(v, "filled") and v.dtype.kind == "f" else np.asarray(v)) for k, v in res.items()}
+    return {
+        k: (v.filled(np.nan) if hasattr(v, "filled") and v.dtype.kind == "f" else np.asarray(v))
+        for k, v in res.items()
+    }
 
 
 def _delete_windows(con, scope: str, wanted: dict[object, set[int]]) -> None:
@@ -418,7 +474,9 @@ def _raw_rows_loader(con, config: Config):
     def load(scope: str, key: str, end_day: int):
         end = from_day_number(end_day)
         start = end - timedelta(days=length - 1)
-        cond = {"decision_maker": "d.decision_maker = ?", "team": "d.team = ?", "all": "? = ?"}[scope]
+        cond = {"decision_maker": "d.decision_maker = ?", "team": "d.team = ?", "all": "? = ?"}[
+            scope
+        ]
         params = [key] if scope != "all" else [ALL_KEY, ALL_KEY]
         cues_ok = " AND ".join(f"d.{quote_ident(c)} IS NOT NULL" for c in config.cues)
         sql = (
@@ -438,15 +496,19 @@ def _raw_rows_loader(con, config: Config):
 def _fit_and_write(con, config, sig, series: Series, ent, end, start, stop) -> tuple[int, int]:
     if not len(ent):
         return 0, 0
-    fits, method = fit_series(config, series, ent, end, start, stop, _raw_rows_loader(con, config))
+    merged = window_moments(config, series, ent, end)
+    loader = _raw_rows_loader(con, config)
+    fits, method = fit_series(config, series, ent, end, start, stop, loader, merged)
     length = config.windows.length_days
-    all_w = window_sums(series.all_rows, start, stop)
+    all_w = merged[0]
     keys = series.keys[ent].astype(str)
     teams = series.teams[ent]
     ends = [from_day_number(e) for e in end]
     starts = [e - timedelta(days=length - 1) for e in ends]
     k = len(fits.names)
-    ys_sd = np.sqrt(np.where(all_w.n > 1, all_w.comoment[:, k, k] / np.maximum(all_w.n - 1, 1), np.nan))
+    ys_sd = np.sqrt(
+        np.where(all_w.n > 1, all_w.comoment[:, k, k] / np.maximum(all_w.n - 1, 1), np.nan)
+    )
     now = utc_now()
     fit_df = pd.DataFrame(
         {
@@ -523,12 +585,32 @@ def _fit_and_write(con, config, sig, series: Series, ent, end, start, stop) -> t
 # --- reading fits back ----------------------------------------------------------------
 
 FIT_FIELDS = [
-    "scope", "decision_maker", "team", "window_start", "window_end", "n_decisions", "n_linked",
-    "R_s", "R_e", "r_a", "G", "C", "model_of_judge_r",
+    "scope",
+    "decision_maker",
+    "team",
+    "window_start",
+    "window_end",
+    "n_decisions",
+    "n_linked",
+    "R_s",
+    "R_e",
+    "r_a",
+    "G",
+    "C",
+    "model_of_judge_r",
 ]
 CUE_FIELDS = [
-    "cue", "weight", "std_error", "ci_low", "ci_high", "std_weight", "utilization_r",
-    "validity_r", "p_value", "estimable", "reason",
+    "cue",
+    "weight",
+    "std_error",
+    "ci_low",
+    "ci_high",
+    "std_weight",
+    "utilization_r",
+    "validity_r",
+    "p_value",
+    "estimable",
+    "reason",
 ]
 
 
@@ -572,7 +654,14 @@ def read_fits(
     for row in fits.itertuples(index=False):
         d = dict(zip([*FIT_FIELDS, "reason"], row, strict=True))
         g = grouped.get((d["scope"], d["decision_maker"], d["window_end"]))
-        d["cues"] = [] if g is None else [_clean(dict(zip(CUE_FIELDS, r, strict=True))) for r in g[CUE_FIELDS].itertuples(index=False)]
+        d["cues"] = (
+            []
+            if g is None
+            else [
+                _clean(dict(zip(CUE_FIELDS, r, strict=True)))
+                for r in g[CUE_FIELDS].itertuples(index=False)
+            ]
+        )
         out.append(_clean(d))
     return out
 

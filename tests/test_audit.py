@@ -21,7 +21,7 @@ import pyarrow.parquet as pq
 import pytest
 from conftest import REPO, write_config
 
-from monitor.alerts import acknowledge, assess
+from monitor.alerts import acknowledge, assess, list_alerts
 from monitor.audit import ExportUsageError, export
 from monitor.config import load_config
 from monitor.ingest import ingest
@@ -93,6 +93,29 @@ def _outcome_frames() -> list[pd.DataFrame]:
     return [pd.read_csv(f, dtype=str) for f in files]
 
 
+def _plant_alert(config) -> int:
+    """An open forbidden-cue alert as `assess` records one (alerts row + history row).
+
+    Planted rather than provoked: whether the sample's windows open an alert is the
+    policy's business (tests/test_alerts.py); here only its as-of history matters.
+    """
+    now = utc_now()
+    with Store(config).writer() as con:
+        alert_id = int(con.execute("SELECT nextval('alert_ids')").fetchone()[0])
+        con.execute(
+            "INSERT INTO alerts (alert_id, kind, scope, decision_maker, team, cue, state, "
+            "opened_at, opened_window_end, evidence, updated_at) "
+            "VALUES (?, 'forbidden_cue', 'decision_maker', 'H002', 'Alder', 'claimant_gender', "
+            "'open', ?, DATE '2024-11-24', '{}', ?)",
+            [alert_id, now, now],
+        )
+        con.execute(
+            "INSERT INTO alert_history VALUES (?, ?, NULL, 'open', 'cuewatch assess', 'test', '{}')",
+            [alert_id, now],
+        )
+    return alert_id
+
+
 @pytest.fixture(scope="module")
 def pack(tmp_path_factory) -> SimpleNamespace:
     root = tmp_path_factory.mktemp("audit")
@@ -101,17 +124,22 @@ def pack(tmp_path_factory) -> SimpleNamespace:
     cfg_path.write_text(raw.replace("../demo_run", str(root / "run")), encoding="utf-8")
     config = load_config(cfg_path)
     Store(config).init()
-    ingest(config, [str(SAMPLE / "decisions")], kind="decisions")
+    # One file per phase and kind keeps the set-up fast; rows keep the files' order.
+    decisions = sorted((SAMPLE / "decisions").glob("*.csv"))
+    joined = pd.concat([pd.read_csv(f, dtype=str) for f in decisions], ignore_index=True)
+    (root / "in").mkdir()
+    joined.to_csv(root / "in" / "decisions.csv", index=False)
+    ingest(config, [str(root / "in" / "decisions.csv")], kind="decisions")
     frames = _outcome_frames()
     half = len(frames) // 2
     phase1 = pd.concat(frames[:half], ignore_index=True)
     phase2 = pd.concat(frames[half:], ignore_index=True)
     p1 = root / "in" / "outcomes_phase1.csv"
-    p1.parent.mkdir()
     phase1.to_csv(p1, index=False)
     ingest(config, [str(p1)], kind="outcomes")
     refit(config)
     assess(config)
+    first_alert = _plant_alert(config)  # open before T1, acknowledged after it
     time.sleep(0.01)
     t1 = utc_now().isoformat()
     time.sleep(0.01)
@@ -136,10 +164,10 @@ def pack(tmp_path_factory) -> SimpleNamespace:
     ingest(config, [str(root / "in" / "outcomes_phase2.csv")], kind="outcomes")
     ingest(config, [str(root / "in" / "outcomes_corrections.csv")], kind="outcomes")
     ingest(config, [str(root / "in" / "decisions_late.csv")], kind="decisions")
-    refit(config)
-    assess(config)
-    first_alert = min(a["id"] for a in __import__("monitor.alerts").alerts.list_alerts(config))
     acknowledge(config, first_alert, "auditor", "seen")
+    refit(config)
+    assess(config)  # may resolve the planted alert: its windows are not flagged
+    current = {a["id"]: a for a in list_alerts(config)}
     time.sleep(0.01)
     t2 = utc_now().isoformat()
     b_dir, c_dir, d_dir = root / "b", root / "c", root / "d"
@@ -161,6 +189,7 @@ def pack(tmp_path_factory) -> SimpleNamespace:
         phase2=phase2,
         flips=flips,
         first_alert=first_alert,
+        current=current,
     )
 
 
@@ -170,7 +199,8 @@ def pack(tmp_path_factory) -> SimpleNamespace:
 def test_contract_columns_present_and_typed_in_csv_and_parquet(pack):
     for name, columns in CONTRACT.items():
         rows = _read_csv(pack.a / f"{name}.csv")
-        header = list(rows[0]) if rows else next(csv.reader(open(pack.a / f"{name}.csv")))
+        with open(pack.a / f"{name}.csv", encoding="utf-8", newline="") as fh:
+            header = next(csv.reader(fh))
         assert set(columns) <= set(header), name
         schema = pq.read_schema(pack.a / f"{name}.parquet")
         for col, kind in columns.items():
@@ -205,7 +235,8 @@ def test_workbook_opens_with_openpyxl_and_matches_the_csvs(pack):
         values = list(ws.iter_rows(values_only=True))
         header, body = list(values[0]), values[1:]
         rows = _read_csv(pack.a / f"{name}.csv")
-        assert header == list(rows[0]) if rows else True
+        with open(pack.a / f"{name}.csv", encoding="utf-8", newline="") as fh:
+            assert header == next(csv.reader(fh))
         assert len(body) == len(rows)
         for cells, r in zip(body, rows, strict=True):
             for col, cell in zip(header, cells, strict=True):
@@ -242,8 +273,13 @@ def test_same_as_of_gives_byte_identical_tables_after_later_ingests(pack):
         assert (pack.a / n).read_bytes() == (pack.b / n).read_bytes(), n
     ma = json.loads((pack.a / "manifest.json").read_text())
     mb = json.loads((pack.b / "manifest.json").read_text())
-    assert ma["store_fingerprint"] == mb["store_fingerprint"]
-    assert ma["as_of"] == mb["as_of"] and ma["config_digest"] == mb["config_digest"]
+    # Only the creation time (and the formats asked for) may differ between the manifests.
+    skip = {"created_at", "tables", "workbook", "report"}
+    assert {k: v for k, v in ma.items() if k not in skip} == {
+        k: v for k, v in mb.items() if k not in skip
+    }
+    assert ma["created_at"] != mb["created_at"]
+    assert ma["config_digest"] == pack.config.digest and ma["as_of_defaulted_to_now"] is False
     for t, entry in mb["tables"].items():
         assert entry["files"] == {
             k: v for k, v in ma["tables"][t]["files"].items() if k in entry["files"]
@@ -256,14 +292,49 @@ def test_same_as_of_gives_byte_identical_tables_after_later_ingests(pack):
     ).read_bytes()
 
 
+def test_manifest_fingerprint_counts_the_rows_and_batches_used(pack):
+    manifest = json.loads((pack.a / "manifest.json").read_text())
+    fp = manifest["store_fingerprint"]
+    # Independent count: the quarter plus one window length of look-back, ingested by T1.
+    (n_dec, batches) = (
+        Store(pack.config)
+        .query_df(
+            "SELECT count(*) AS n, list(DISTINCT batch_id ORDER BY batch_id) AS b FROM decisions "
+            "WHERE decided_day BETWEEN DATE '2024-10-01' - INTERVAL 89 DAY AND DATE '2024-12-31' "
+            "AND ingested_at <= ?::TIMESTAMPTZ",
+            [pack.t1],
+        )
+        .iloc[0]
+    )
+    n_out = (
+        Store(pack.config)
+        .query_df(
+            "SELECT count(DISTINCT o.decision_id) FROM outcomes o JOIN decisions d USING (decision_id) "
+            "WHERE o.ingested_at <= ?::TIMESTAMPTZ AND d.ingested_at <= ?::TIMESTAMPTZ",
+            [pack.t1, pack.t1],
+        )
+        .iloc[0, 0]
+    )
+    assert fp["decisions"] == n_dec and fp["outcomes"] == n_out
+    assert set(batches) <= set(fp["batches"]) and len(fp["sha256"]) == 64
+    assert manifest["quarter"] == "2024Q4" and manifest["software"]["version"]
+    assert (pack.a / manifest["methodology"]).read_text().count("legal") >= 1
+
+
 def test_alerts_stand_as_they_were_at_the_as_of_time(pack):
     before = {int(r["alert_id"]): r for r in _read_csv(pack.a / "alerts.csv")}
     after = {int(r["alert_id"]): r for r in _read_csv(pack.c / "alerts.csv")}
-    assert pack.first_alert in after and after[pack.first_alert]["state"] == "acknowledged"
-    assert after[pack.first_alert]["acknowledged_by"] == "auditor"
-    # It was opened before T1 and acknowledged after: at T1 it stood open.
+    # Opened before T1, acknowledged (and maybe resolved by assess) after T1.
     assert before[pack.first_alert]["state"] == "open"
     assert before[pack.first_alert]["acknowledged_by"] == ""
+    assert before[pack.first_alert]["resolved_at"] == ""
+    # At T2 the export agrees with the alert lifecycle's own account (alerts --json).
+    now = pack.current[pack.first_alert]
+    assert after[pack.first_alert]["state"] == now["state"]
+    assert after[pack.first_alert]["acknowledged_by"] == "auditor"
+    assert set(after) <= set(pack.current)
+    history = json.loads(after[pack.first_alert]["history"])
+    assert [h["to"] for h in history][:2] == ["open", "acknowledged"]
     assert all(h["changed_at"] <= pack.t1 for h in _read_csv(pack.a / "alert_history.csv"))
 
 

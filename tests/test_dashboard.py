@@ -141,9 +141,14 @@ def test_overview_names_the_planted_handlers_without_a_click(demo_config, truth,
     text = markdown_text(at)
     for kind in ("forbidden_cue_direct", "proxy_cue", "consistency_loss"):
         assert f"**{planted(truth, kind)}**" in text, kind
-    planted_ids = {h for c in truth["changes"] for h in c["handler_ids"]}
     flagged = {line.split("**")[1] for line in text.splitlines() if line.startswith("- **")}
-    assert flagged <= planted_ids | {h["handler_id"] for h in truth["handlers"]}
+    # Source: the store's alerts table, read with plain SQL.
+    expect = sql(
+        demo_config,
+        "SELECT DISTINCT decision_maker FROM alerts WHERE scope = 'decision_maker' "
+        "AND state IN ('open', 'acknowledged')",
+    )["decision_maker"]
+    assert flagged == set(expect)
 
 
 def test_overview_figures_equal_the_stored_latest_windows(demo_config, monkeypatch):
@@ -184,7 +189,8 @@ def test_period_picks_the_latest_window_inside_it_and_trends_over_it(demo_config
     # Source: the fits table, counted with plain SQL.
     expect = sql(
         demo_config,
-        "SELECT decision_maker, max(window_end) AS last, count(*) AS windows FROM fits "
+        "SELECT decision_maker, max(window_end) AS last, "
+        "count(*) FILTER (WHERE isfinite(R_s)) AS windows FROM fits "
         "WHERE scope = 'decision_maker' AND window_end BETWEEN ? AND ? GROUP BY 1",
         list(period),
     ).set_index("decision_maker")
@@ -212,7 +218,7 @@ def test_person_page_shows_the_stored_figures_and_charts(demo_config, truth, mon
     assert metrics["Linked outcomes"] == str(int(latest["n_linked"]))
     assert metrics["Consistency R_s"] == f"{latest['R_s']:.2f}"
     assert metrics["Achievement r_a"] == f"{latest['r_a']:.2f}"
-    charts = at.get("arrow_vega_lite_chart")
+    charts = at.get("vega_lite_chart")
     assert len(charts) == 2
     table = at.dataframe[0].value
     assert table.loc[table["cue"] == "claimant_gender=male", "forbidden"].item()
@@ -275,7 +281,9 @@ def test_team_median_is_the_median_over_the_teams_decision_makers(demo_config, t
 # --- Forbidden-cue evidence -----------------------------------------------------------------
 
 
-def test_forbidden_page_flags_the_planted_direct_and_proxy_handlers(demo_config, truth, monkeypatch):
+def test_forbidden_page_flags_the_planted_direct_and_proxy_handlers(
+    demo_config, truth, monkeypatch
+):
     at = app(demo_config, monkeypatch, "page_forbidden.py")
     assert any("not proof of intent" in w.value for w in at.warning)
     assert any("compliance and legal advisers" in w.value for w in at.warning)
@@ -293,9 +301,11 @@ def test_forbidden_page_flags_the_planted_direct_and_proxy_handlers(demo_config,
 def test_disparity_is_the_difference_in_means_on_raw_rows(demo_config, truth):
     cfg = load_config(demo_config)
     who = planted(truth, "forbidden_cue_direct")
-    row = dd.forbidden_evidence(cfg).rows.query(
-        "decision_maker == @who and cue == 'claimant_gender'"
-    ).iloc[0]
+    row = (
+        dd.forbidden_evidence(cfg)
+        .rows.query("decision_maker == @who and cue == 'claimant_gender'")
+        .iloc[0]
+    )
     raw = sql(
         demo_config,
         "SELECT judgment, claimant_gender FROM decisions WHERE decision_maker = ? "
@@ -313,7 +323,9 @@ def test_disparity_is_the_difference_in_means_on_raw_rows(demo_config, truth):
 # --- Alerts -------------------------------------------------------------------------------------
 
 
-def test_alerts_page_shows_evidence_and_acknowledges_with_a_note(demo_config, tmp_path, monkeypatch):
+def test_alerts_page_shows_evidence_and_acknowledges_with_a_note(
+    demo_config, tmp_path, monkeypatch
+):
     cfg = copy_store(demo_config, tmp_path)
     at = app(cfg, monkeypatch, "page_alerts.py")
     open_ids = sql(cfg, "SELECT alert_id FROM alerts WHERE state = 'open' ORDER BY 1")["alert_id"]
@@ -325,7 +337,7 @@ def test_alerts_page_shows_evidence_and_acknowledges_with_a_note(demo_config, tm
     assert f"n = {json.loads(n)['n']}" in markdown_text(at)
     at.text_input(key=f"by-{target}").input("R. Okafor")
     at.text_area(key=f"note-{target}").input("Reviewed with the team lead.")
-    at.button[[b.label for b in at.button].index("Acknowledge")].click().run()
+    at.button(key=f"ack-btn-{target}").click().run()
     assert not at.exception
     assert any(f"Alert {target} acknowledged" in s.value for s in at.success)
     row = sql(cfg, "SELECT state, acknowledged_by, note FROM alerts WHERE alert_id = ?", [target])
@@ -335,26 +347,34 @@ def test_alerts_page_shows_evidence_and_acknowledges_with_a_note(demo_config, tm
 def test_acknowledging_while_the_writer_holds_the_store_says_busy(demo_config, tmp_path):
     cfg_path = copy_store(demo_config, tmp_path)
     cfg = load_config(cfg_path)
-    target = int(sql(cfg_path, "SELECT min(alert_id) AS a FROM alerts WHERE state = 'open'")["a"][0])
+    target = int(
+        sql(cfg_path, "SELECT min(alert_id) AS a FROM alerts WHERE state = 'open'")["a"][0]
+    )
     from monitor.store import Store
 
     with Store(cfg).writer():
         result = dd.acknowledge_alert(cfg, target, "R. Okafor", "busy?")
     assert not result.ok and result.message == dd.BUSY_MESSAGE
-    assert sql(cfg_path, "SELECT state FROM alerts WHERE alert_id = ?", [target])["state"][0] == "open"
+    assert (
+        sql(cfg_path, "SELECT state FROM alerts WHERE alert_id = ?", [target])["state"][0] == "open"
+    )
 
 
 # --- Data health and audit pack ---------------------------------------------------------------------
 
 
-def test_data_health_counts_the_planted_bad_rows_and_the_nightly_run(demo_config, truth, monkeypatch):
+def test_data_health_counts_the_planted_bad_rows_and_the_nightly_run(
+    demo_config, truth, monkeypatch
+):
     at = app(demo_config, monkeypatch, "page_health.py")
     health = dd.data_health(load_config(demo_config))
     landed = [b for b in truth["bad_rows"] if b["file"].split("_")[1][:7] < HELD_BACK_FROM]
     expect = Counter(REASON_OF_KIND[b["kind"]] for b in landed)
     assert dict(zip(health.quarantine["reason"], health.quarantine["rows"], strict=True)) == expect
     assert set(health.quarantine_sample["reason"]) == set(expect)
-    run = sql(demo_config, "SELECT finished_at FROM runs WHERE command = 'nightly' AND status = 'ok'")
+    run = sql(
+        demo_config, "SELECT finished_at FROM runs WHERE command = 'nightly' AND status = 'ok'"
+    )
     metrics = {m.label: m.value for m in at.metric}
     assert metrics["Last successful nightly run"] == str(run["finished_at"].max())[:16]
     assert metrics["Rows quarantined"] == f"{sum(expect.values()):,}"
@@ -369,9 +389,11 @@ def test_audit_page_builds_a_zip_or_says_it_is_not_installed(demo_config, monkey
     if not dd.audit_available():
         assert any("not installed" in i.value for i in at.info)
         return
+    at.selectbox[0].select("2025Q2")
     at.button[0].click().run()
     assert not at.exception, [e.value for e in at.exception]
-    assert any("Audit pack for" in s.value for s in at.success)
+    assert not at.error, [e.value for e in at.error]
+    assert any("Audit pack for 2025Q2" in s.value for s in at.success)
     assert len(at.get("download_button")) == 1
 
 

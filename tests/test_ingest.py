@@ -173,7 +173,16 @@ def test_every_reason_code_is_produced_and_counted(tmp_path):
     assert raw[7]["score"] == "high" and raw[7]["case_id"] == "c000006"
     assert raw[9]["amount"] == "12,5"
     assert raw[15].endswith(",surplus")  # the unsplittable line, verbatim, as a JSON string
-    assert query(cfg_a, "SELECT count(*) FROM quarantine WHERE message = ''") == [(0,)]
+    messages = dict(
+        query(cfg_a, "SELECT source_line, message FROM quarantine WHERE kind = 'decisions'")
+    )
+    assert messages[6] == "handler is empty"
+    assert messages[7] == "score='high' is not a number"
+    assert messages[10] == "amount='1000.01' is outside [0, 1000]"
+    assert messages[12] == "witness='2' is not one of 0, 1"
+    assert messages[13].startswith("region='west' is not a declared level")
+    assert "line 2" in messages[14]
+    assert all(m for m in messages.values())
 
 
 # --- idempotency ---------------------------------------------------------------------------
@@ -409,3 +418,25 @@ def test_landing_folders_are_the_default(config_path, tmp_path):
         ("outcomes", "ingested"),
     ]
     assert query(config_path, "SELECT criterion FROM decisions_with_outcome") == [(1.0,)]
+
+
+# --- known limits of the CSV reader, kept visible -------------------------------------------
+
+
+@pytest.mark.xfail(strict=True, reason="DuckDB skips blank CSV lines, so later line numbers shift")
+def test_csv_line_numbers_count_blank_lines(config_path, tmp_path):
+    data = write_csv(tmp_path / "d.csv", [decision_row(1)])
+    with open(data, "a", encoding="utf-8", newline="") as fh:
+        fh.write("\r\n")  # line 3: blank
+        fh.write(",".join(decision_row(2, score="high").values()) + "\r\n")  # line 4
+    ingest_json(config_path, "--kind", "decisions", str(data))
+    assert query(config_path, "SELECT source_line FROM quarantine") == [(4,)]
+
+
+@pytest.mark.xfail(strict=True, reason="DuckDB's CSV reader rejects a file with mixed line ends")
+def test_csv_with_mixed_line_endings_is_ingested(config_path, tmp_path):
+    data = write_csv(tmp_path / "d.csv", [decision_row(1)])  # CRLF lines
+    with open(data, "a", encoding="utf-8", newline="") as fh:
+        fh.write(",".join(decision_row(2).values()) + "\n")  # an LF line appended
+    doc = ingest_json(config_path, "--kind", "decisions", str(data))
+    assert doc["files"][0]["status"] == "ingested" and doc["accepted"] == 2

@@ -8,9 +8,12 @@ batch's counts matching the rows actually in the store.
 
 from __future__ import annotations
 
+import atexit
 import csv
+import functools
 import io
 import json
+import shutil
 import tempfile
 from pathlib import Path
 
@@ -134,11 +137,22 @@ def _jsonl_file(draw) -> tuple[str, int]:
     return "\n".join(lines) + "\n", n_records
 
 
+@functools.cache
+def _template_store() -> Path:
+    """An initialised, empty store for the test configuration, created once."""
+    folder = Path(tempfile.mkdtemp(prefix="cuewatch-fuzz-"))
+    atexit.register(shutil.rmtree, folder, True)
+    store = Store(load_config(make_config(folder)))
+    store.init()
+    return store.path
+
+
 def _ingest_and_check(text: str, suffix: str) -> dict:
     with tempfile.TemporaryDirectory() as tmp:
         cfg = load_config(make_config(Path(tmp)))
         store = Store(cfg)
-        store.init()
+        store.path.parent.mkdir(parents=True)
+        shutil.copyfile(_template_store(), store.path)  # faster than init per example
         data = Path(tmp) / f"d{suffix}"
         data.write_text(text, encoding="utf-8")
         summary = ingest(cfg, [str(data)], kind="decisions")

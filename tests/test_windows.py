@@ -100,14 +100,14 @@ def assert_same_figures(a: pd.DataFrame, b: pd.DataFrame, keys: list[str], rtol:
         if a[col].dtype == object and len(x) and isinstance(x[0], list | np.ndarray):
             for i, (u, v) in enumerate(zip(x, y, strict=True)):
                 u, v = np.asarray(u, float), np.asarray(v, float)
-                scale = np.nanmax(np.abs(u)) if np.isfinite(u).any() else 0.0
+                scale = np.abs(u[np.isfinite(u)]).max(initial=0.0)
                 np.testing.assert_allclose(
                     u, v, rtol=rtol, atol=rtol * scale, err_msg=f"{col} row {i}"
                 )
         elif a[col].dtype.kind in "fiu":
             x, y = x.astype(float), y.astype(float)
             np.testing.assert_array_equal(np.isnan(x), np.isnan(y), err_msg=col)
-            scale = np.nanmax(np.abs(x)) if np.isfinite(x).any() else 0.0
+            scale = np.abs(x[np.isfinite(x)]).max(initial=0.0)
             np.testing.assert_allclose(x, y, rtol=rtol, atol=rtol * scale, err_msg=col)
         else:
             assert list(a[col].fillna("<null>")) == list(b[col].fillna("<null>")), col
@@ -132,7 +132,12 @@ def day_by_day(tmp_path_factory) -> dict:
         outcome_horizon=start + timedelta(days=150),
     )  # fmt: skip
     days = day_files(root / "scenario")
-    bulk, tail, spare = days[:-12], days[-12:-1], days[-1]
+    # Hold back the newest decision file: it is the "one new day" of a later test.
+    last = max(i for i, (_, files) in enumerate(days) if files[0].name.startswith("decisions"))
+    spare = (days[last][0], [days[last][1][0]])
+    days[last] = (days[last][0], days[last][1][1:])
+    days = [(d, files) for d, files in days if files]
+    bulk, tail = days[:-11], days[-11:]
     cfg_path = scenario_config(root / "live")
     config = load_config(cfg_path)
     Store(config).init()
@@ -170,7 +175,10 @@ def _hand_made_outcomes(config: Config, folder: Path, day: date) -> list[Path]:
         "ORDER BY decision_id LIMIT 10",
     )
     stamp = f"{day.isoformat()} 16:00:00"
-    rows = [(i, stamp, "No" if v == 1 else "Yes") for i, v in zip(fix.decision_id, fix.criterion)]
+    rows = [
+        (i, stamp, "No" if v == 1 else "Yes")
+        for i, v in zip(fix.decision_id, fix.criterion, strict=True)
+    ]
     rows += [(i, stamp, "Yes") for i in missing.decision_id]
     path = folder / f"outcomes_extra_{day.isoformat()}.csv"
     folder.mkdir(parents=True, exist_ok=True)
@@ -238,10 +246,43 @@ def test_one_new_day_touches_only_the_windows_covering_it(day_by_day):
     # decided that day, their teams and everyone.
     rows = pd.read_csv(decisions[0], dtype=str)
     end = aligned_end_on_or_after(day)
+    assert end <= before["window_end"].max().date()  # no new window end: see next test
     want = {("decision_maker", h, end) for h in rows["handler_id"]}
     want |= {("team", t, end) for t in rows["team"]} | {("all", "all", end)}
     assert touched == want
     assert summary.windows_fitted == len(want)
+
+
+def test_a_new_week_gives_every_series_its_new_window(day_by_day, tmp_path):
+    """One handler decides on a day past the newest window end: a full refit gives
+    every series a window ending on the new aligned date, so the refresh must too."""
+    cfg_path = copy_store(day_by_day["spare_cfg"], tmp_path / "week")
+    config = load_config(cfg_path)
+    newest = pd.Timestamp(_fitted_at(config)["window_end"].max()).date()
+    day = newest + timedelta(days=2)
+    rows = pd.read_csv(day_by_day["spare"][1][0], dtype=str)
+    one = rows[rows["handler_id"] == rows["handler_id"].iloc[0]].copy()
+    one["claim_id"] = [f"NEW{i:05d}" for i in range(len(one))]
+    one["scored_at"] = f"{day.isoformat()} 11:00:00"
+    path = tmp_path / f"decisions_{day.isoformat()}.csv"
+    one.to_csv(path, index=False)
+    before = _fitted_at(config)
+    ingest_files(config, [path])
+    assert refit(config).mode == "incremental"
+    end = aligned_end_on_or_after(day)
+    touched = _touched(before, _fitted_at(config))
+    active = read_table(
+        config,
+        "SELECT DISTINCT decision_maker, team FROM decisions "
+        f"WHERE decided_day BETWEEN DATE '{end - timedelta(days=89)}' AND DATE '{end}'",
+    )
+    want = {("decision_maker", h, end) for h in active["decision_maker"]}
+    want |= {("team", t, end) for t in active["team"]} | {("all", "all", end)}
+    assert touched == want
+    full_cfg = copy_store(cfg_path, tmp_path / "week_full")
+    refit(load_config(full_cfg), full=True)
+    assert_same_figures(stored_fits(config)[0], stored_fits(load_config(full_cfg))[0],
+                        FIT_KEYS, rtol=1e-10)  # fmt: skip
 
 
 def test_late_outcomes_touch_only_the_windows_covering_their_decisions(day_by_day, tmp_path):
@@ -313,9 +354,14 @@ CUE_JSON_KEYS = {
 
 
 def _fits_json(cfg_path: Path, *args: str) -> list[dict]:
-    proc = run_cli(cfg_path, "fits", "--json", *args)
-    assert proc.returncode == 0, text(proc)
-    return json.loads(text(proc)[0])
+    """The real command (click's in-process runner: no interpreter start-up per call)."""
+    from click.testing import CliRunner
+
+    from monitor.cli import main
+
+    result = CliRunner().invoke(main, ["--config", str(cfg_path), "fits", "--json", *args])
+    assert result.exit_code == 0, result.output
+    return json.loads(result.output)
 
 
 def test_fits_json_follows_the_contract(day_by_day):
@@ -343,8 +389,8 @@ def test_fits_json_follows_the_contract(day_by_day):
     short = [d for d in docs if d["n_decisions"] < config.windows.min_rows]
     assert short and all(d["R_s"] is None and "too few rows" in d["reason"] for d in short)
     assert all(c["reason"] == "too few rows" for d in short for c in d["cues"])
-    late = [d for d in docs if d["n_linked"] == 0]
-    assert late and all(d["R_e"] is None and "no linked outcomes" in d["reason"] for d in late)
+    thin = [d for d in docs if d["n_linked"] < config.windows.min_rows]
+    assert thin and all(d["R_e"] is None and "linked" in d["reason"] for d in thin)
 
 
 def test_fits_json_filters_by_decision_maker_and_latest(day_by_day):
