@@ -5,15 +5,14 @@ queries and closes it, so the nightly writer is never kept waiting for long.  No
 them imports Streamlit: the pages only lay out what these return, and the tests call
 them directly.  A busy store raises ``monitor.store.StoreBusy`` (the caller decides
 how long to retry); a missing store raises ``StoreMismatch``.
+
+The data-health page, the audit pack and launching the app live in
+``monitor.dashboard_health``, ``monitor.dashboard_audit`` and
+``monitor.dashboard_launch``; their names stay importable from here.
 """
 
 from __future__ import annotations
 
-import io
-import subprocess
-import sys
-import tempfile
-import zipfile
 from dataclasses import dataclass
 from datetime import date
 from pathlib import Path
@@ -22,11 +21,11 @@ import numpy as np
 import pandas as pd
 
 from monitor.config import Config
-from monitor.store import Store, StoreBusy
-
-# Read retries are kept short: the page tells the reviewer and retries itself rather
-# than sitting inside one connect call for the store's full read_retry_s.
-READ_RETRY_S = 2.0
+from monitor.dashboard_audit import audit_available, build_audit_pack, quarters
+from monitor.dashboard_health import DataHealth, data_health
+from monitor.dashboard_launch import THEME, app_path, launch, launch_command
+from monitor.dashboard_reads import READ_RETRY_S, read_frames
+from monitor.store import StoreBusy
 
 CAUTION = (
     "A weight on a forbidden cue is a statistical association in observational data, "
@@ -52,13 +51,6 @@ def store_stamp(config: Config) -> tuple[float, float]:
     path = Path(config.store.path)
     wal = path.with_name(path.name + ".wal")
     return tuple(p.stat().st_mtime if p.exists() else 0.0 for p in (path, wal))  # type: ignore[return-value]
-
-
-def _query(config: Config, *queries: tuple[str, list]) -> list[pd.DataFrame]:
-    """Run the queries on one read-only connection, then close it."""
-    store = Store(config)
-    with store.reader(retry_s=min(READ_RETRY_S, config.store.read_retry_s)) as con:
-        return [con.execute(sql, params).df() for sql, params in queries]
 
 
 def forbidden_design_columns(config: Config) -> set[str]:
@@ -93,7 +85,7 @@ class Overview:
 
 def window_range(config: Config) -> tuple[date, date] | None:
     """First and last stored window end, or None before the first refit."""
-    (df,) = _query(config, (_SPAN_SQL, []))
+    (df,) = read_frames(config, (_SPAN_SQL, []))
     return _span(df)
 
 
@@ -108,7 +100,7 @@ def _span(df: pd.DataFrame) -> tuple[date, date] | None:
 
 
 def teams(config: Config) -> list[str]:
-    (df,) = _query(config, (_TEAMS_SQL, []))
+    (df,) = read_frames(config, (_TEAMS_SQL, []))
     return df["decision_maker"].tolist()
 
 
@@ -118,7 +110,7 @@ def decision_makers(config: Config, team: str | None = None) -> pd.DataFrame:
     params: list = []
     if team:
         sql, params = sql + " AND team = ?", [team]
-    (df,) = _query(config, (sql + " ORDER BY decision_maker", params))
+    (df,) = read_frames(config, (sql + " ORDER BY decision_maker", params))
     return df
 
 
@@ -153,7 +145,7 @@ def overview(
         SELECT scope, decision_maker, count(*) AS open_alerts,
                string_agg(kind || coalesce(' ' || cue, ''), '; ' ORDER BY alert_id) AS why
         FROM alerts WHERE state IN ('open', 'acknowledged') GROUP BY scope, decision_maker"""
-    fits, alerts, span, team_df = _query(
+    fits, alerts, span, team_df = read_frames(
         config, (fits_sql, params), (alerts_sql, []), (_SPAN_SQL, []), (_TEAMS_SQL, [])
     )
     rows = fits.merge(alerts, on=["scope", "decision_maker"], how="left")
@@ -227,7 +219,7 @@ def person_history(config: Config, decision_maker: str) -> PersonHistory:
         SELECT alert_id, kind, cue, state, opened_window_end AS start,
                resolved_window_end AS "end"
         FROM alerts WHERE scope = 'decision_maker' AND decision_maker = ? ORDER BY alert_id"""
-    w, med, lens, spans = _query(
+    w, med, lens, spans = read_frames(
         config,
         (weights_sql, [decision_maker]),
         (median_sql, [decision_maker]),
@@ -301,7 +293,7 @@ def forbidden_evidence(config: Config, team: str | None = None) -> ForbiddenEvid
           AND p.decision_maker IN (SELECT decision_maker FROM fits
                                    WHERE scope = 'decision_maker' {team_filter})
         ORDER BY p.decision_maker, p.cue, p.level, abs(p.part) DESC"""
-    rows, proxies = _query(config, (rows_sql, params), (proxies_sql, params))
+    rows, proxies = read_frames(config, (rows_sql, params), (proxies_sql, params))
     return ForbiddenEvidence(rows=rows, proxies=proxies)
 
 
@@ -359,161 +351,33 @@ def acknowledge_alert(config: Config, alert_id: int, by: str, note: str) -> AckR
     return AckResult(True, f"Alert {alert_id} acknowledged by {by}.", alert)
 
 
-# --- data health ------------------------------------------------------------------------------
-
-
-@dataclass(frozen=True)
-class DataHealth:
-    """``batches``: per kind and status, files and row counts with the last ingest time.
-    ``quarantine``: kind, reason, rows.  ``quarantine_sample``: up to three rejected
-    rows per reason.  ``coverage``: per decision month, decisions, linked outcomes,
-    share linked and the median / 90th-percentile outcome lag in days.
-    ``last_nightly``: the newest run with command 'nightly' and status 'ok' (run_id,
-    started_at, finished_at, message) or None; ``last_run``: the newest run of any kind."""
-
-    batches: pd.DataFrame
-    quarantine: pd.DataFrame
-    quarantine_sample: pd.DataFrame
-    coverage: pd.DataFrame
-    last_nightly: dict | None
-    last_run: dict | None
-
-
-def data_health(config: Config) -> DataHealth:
-    frames = _query(
-        config,
-        (
-            """SELECT kind, status, count(*) AS files, sum(rows_read) AS rows_read,
-                      sum(rows_accepted) AS accepted, sum(rows_quarantined) AS quarantined,
-                      sum(rows_duplicate) AS duplicates, max(finished_at) AS last_finished
-               FROM batches GROUP BY kind, status ORDER BY kind, status""",
-            [],
-        ),
-        ("SELECT kind, reason, count(*) AS rows FROM quarantine GROUP BY ALL ORDER BY 3 DESC", []),
-        (
-            """SELECT q.kind, q.reason, q.record_id, q.message, q.raw_row, b.path AS file,
-                      q.source_line
-               FROM quarantine q LEFT JOIN batches b USING (batch_id)
-               QUALIFY row_number() OVER (PARTITION BY q.reason ORDER BY q.batch_id,
-                                          q.source_line) <= 3
-               ORDER BY q.reason, q.batch_id, q.source_line""",
-            [],
-        ),
-        (
-            """SELECT date_trunc('month', decided_day)::DATE AS month, count(*) AS decisions,
-                      count(criterion) AS linked,
-                      median(date_diff('second', decided_at, observed_at)) / 86400.0
-                          AS median_lag_days,
-                      quantile_cont(date_diff('second', decided_at, observed_at), 0.9)
-                          / 86400.0 AS p90_lag_days
-               FROM decisions_with_outcome GROUP BY 1 ORDER BY 1""",
-            [],
-        ),
-        (
-            """SELECT run_id, command, status, started_at, finished_at, message FROM runs
-               ORDER BY finished_at DESC NULLS LAST, started_at DESC""",
-            [],
-        ),
-    )
-    batches, quarantine, sample, coverage, runs = frames
-    coverage["share_linked"] = coverage["linked"] / coverage["decisions"].where(
-        coverage["decisions"] > 0
-    )
-    ok = runs[(runs["command"] == "nightly") & (runs["status"] == "ok")]
-    return DataHealth(
-        batches=batches,
-        quarantine=quarantine,
-        quarantine_sample=sample,
-        coverage=coverage,
-        last_nightly=ok.iloc[0].to_dict() if len(ok) else None,
-        last_run=runs.iloc[0].to_dict() if len(runs) else None,
-    )
-
-
-# --- audit pack ------------------------------------------------------------------------------
-
-
-def audit_available() -> bool:
-    try:
-        from monitor import audit  # noqa: F401
-    except ImportError:
-        return False
-    return hasattr(audit, "export")
-
-
-def quarters(period: tuple[date, date]) -> list[str]:
-    """Calendar quarters ("2025Q3") touching the period, newest first."""
-    lo, hi = period
-    out, (y, q) = [], (lo.year, (lo.month - 1) // 3 + 1)
-    while (y, q) <= (hi.year, (hi.month - 1) // 3 + 1):
-        out.append(f"{y}Q{q}")
-        y, q = (y + 1, 1) if q == 4 else (y, q + 1)
-    return out[::-1]
-
-
-def build_audit_pack(
-    config: Config, quarter: str, as_of: str | None, formats: list[str]
-) -> tuple[bytes, dict]:
-    """Run the audit export into a temporary folder and return (zip bytes, its result).
-
-    Raises ImportError when ``monitor.audit`` is not installed."""
-    from monitor.audit import export
-
-    with tempfile.TemporaryDirectory(prefix="cuewatch-audit-") as tmp:
-        out = Path(tmp) / f"audit-{quarter}"
-        result = export(
-            config, quarter=quarter, out_dir=out, as_of=as_of, formats=formats,
-            include_rows=[], compare=None,
-        )  # fmt: skip
-        buf = io.BytesIO()
-        with zipfile.ZipFile(buf, "w", zipfile.ZIP_DEFLATED) as zf:
-            for path in sorted(out.rglob("*")):
-                if path.is_file():
-                    zf.write(path, path.relative_to(out.parent))
-    return buf.getvalue(), result
-
-
-# --- launching -------------------------------------------------------------------------------
-
-# Our own palette, passed as theme options so no file outside the package is needed.
-THEME = {
-    "theme.base": "light",
-    "theme.primaryColor": "#1f6f78",
-    "theme.backgroundColor": "#fbfaf7",
-    "theme.secondaryBackgroundColor": "#eef2ef",
-    "theme.textColor": "#1d2b2f",
-}
-
-
-def app_path() -> Path:
-    """dashboards/app.py beside the ``monitor`` package (a source or editable install)."""
-    path = Path(__file__).resolve().parent.parent / "dashboards" / "app.py"
-    if not path.exists():
-        raise FileNotFoundError(
-            f"the dashboard app was not found at {path}; install cuewatch from its source "
-            "folder (pip install -e .)."
-        )
-    return path
-
-
-def launch_command(config: Config, port: int) -> list[str]:
-    cmd = [sys.executable, "-m", "streamlit", "run", str(app_path()),
-           "--server.address", "127.0.0.1", "--server.port", str(int(port)),
-           "--server.headless", "true", "--browser.gatherUsageStats", "false"]  # fmt: skip
-    for key, value in THEME.items():
-        cmd += [f"--{key}", value]
-    return [*cmd, "--", "--config", str(config.source)]
-
-
-def launch(config: Config, port: int) -> int:
-    """Run the Streamlit app on 127.0.0.1:``port`` until it stops; its exit code."""
-    proc = subprocess.Popen(launch_command(config, port))
-    try:
-        return proc.wait()
-    except KeyboardInterrupt:
-        proc.terminate()
-        try:
-            return proc.wait(timeout=10)
-        except subprocess.TimeoutExpired:
-            proc.kill()
-            return proc.wait()
+__all__ = [
+    "BUSY_MESSAGE",
+    "CAUTION",
+    "LENS_FIGURES",
+    "OPEN_STATES",
+    "READ_RETRY_S",
+    "THEME",
+    "AckResult",
+    "DataHealth",
+    "ForbiddenEvidence",
+    "Overview",
+    "PersonHistory",
+    "acknowledge_alert",
+    "alerts_table",
+    "app_path",
+    "audit_available",
+    "build_audit_pack",
+    "data_health",
+    "decision_makers",
+    "forbidden_design_columns",
+    "forbidden_evidence",
+    "launch",
+    "launch_command",
+    "overview",
+    "person_history",
+    "quarters",
+    "store_stamp",
+    "teams",
+    "window_range",
+]

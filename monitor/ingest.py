@@ -46,7 +46,7 @@ FORMATS = {
 
 
 # DuckDB's working-memory cap during ingest (measured: benchmarks/README.md).
-INGEST_MEMORY_LIMIT = "512MB"
+INGEST_MEMORY_LIMIT = "768MB"
 
 
 class IngestUsageError(Exception):

@@ -200,8 +200,15 @@ def moments_sql(
     )
     # Shift per decision-maker when it is part of the key, else per first key.
     shift_key = "decision_maker" if "decision_maker" in names else names[0]
+    # The shift is the mean cut to 20 significant bits (Veltkamp's split): then a
+    # constant 0/1 cue shifts, sums and shifts back without rounding, so its mean is
+    # exactly 0 or 1 and "constant" never hinges on a stray 1e-17.
+    split = "8589934593.0"  # 2^33 + 1
     shift_cols = ", ".join(
-        f"coalesce(fsum(z{i}) / nullif(count(z{i}), 0), 0) AS c{i}" for i in range(p)
+        f"(m{i} * {split}) - ((m{i} * {split}) - m{i}) AS c{i}" for i in range(p)
+    )
+    mean_cols = ", ".join(
+        f"coalesce(fsum(z{i}) / nullif(count(z{i}), 0), 0) AS m{i}" for i in range(p)
     )
     # Unlinked rows carry u = 0 for the criterion; their products are never used.
     shifted = ", ".join(f"b.z{i} - s.c{i} AS u{i}" for i in range(k + 1))
@@ -229,7 +236,8 @@ def moments_sql(
     keys = ", ".join(names)
     return (
         f"WITH base AS MATERIALIZED ({base}), "
-        f"shift AS (SELECT {shift_key}, {shift_cols} FROM base GROUP BY {shift_key}), "
+        f"shift AS (SELECT {shift_key}, {shift_cols} FROM (SELECT {shift_key}, {mean_cols} "
+        f"FROM base GROUP BY {shift_key})), "
         f"shifted AS (SELECT {keep}, b.team_, b.z{k + 1} IS NOT NULL AS linked, {shift_keep}, "
         f"{shifted} FROM base b JOIN shift s USING ({shift_key})), "
         f"parts AS (SELECT {keys}, linked, {', '.join(part_aggs)} FROM shifted "

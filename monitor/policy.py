@@ -1,9 +1,12 @@
-"""Policy checks as pure functions: forbidden-cue use, FDR control, drift, floors, hysteresis.
+"""Forbidden-cue checks as pure functions: direct and proxy use, with FDR control.
 
 Everything works on stacks of ``m`` windows (one row per decision-maker window), the
 same stacks ``monitor.lens`` produces, and never loops over windows in Python.  Inputs
 are the window ``Moments`` over ``z = (x_1 .. x_k, Ys)`` and the judge fits; nothing here
 reads the store or raises on a degenerate window: such a window gets NaN and a reason.
+
+Weight drift and the R_s / r_a floors live in ``monitor.trends``, alert episodes in
+``monitor.episodes``; their names stay importable from here.
 """
 
 from __future__ import annotations
@@ -15,11 +18,19 @@ from typing import TYPE_CHECKING
 import numpy as np
 from scipy import stats
 
+from monitor.episodes import Episode, episodes, window_states
+from monitor.fit_stacks import batched_solve, judge_reasons
+from monitor.trends import (
+    FloorCheck,
+    WeightDrift,
+    achievement_floor,
+    below_floor,
+    consistency_floor,
+    weight_drift,
+)
+
 if TYPE_CHECKING:
     from monitor.lens import LensFits, Moments
-
-# Above this condition number a block is treated as singular (common practice for float64).
-_COND_LIMIT = 1e12
 
 
 @dataclass(frozen=True)
@@ -66,43 +77,13 @@ def cue_columns(names: Sequence[str], cue: str) -> list[int]:
     return [j for j, name in enumerate(names) if name == cue or name.startswith(f"{cue}=")]
 
 
-def _judge_reasons(fits: LensFits) -> np.ndarray:
-    """A fresh (m,) object array: "" where the judge model is fitted, else why not.
-
-    ``fits.reason`` also carries environment-model reasons (e.g. no linked outcomes)
-    that do not touch the judge weights, so the judge model counts as fitted wherever
-    its residual scale is defined.
-    """
-    fitted = np.isfinite(np.asarray(fits.sigma, float)) & (np.asarray(fits.df_resid) > 0)
-    why = [f"judge model not fitted: {r or 'unknown'}" for r in np.asarray(fits.reason, object)]
-    return np.where(fitted, "", np.array(why, dtype=object)).astype(object)
-
-
-def _batched_solve(a: np.ndarray, b: np.ndarray, ok: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
-    """Solve a x = b for each window; windows not ``ok`` or ill-conditioned give NaN.
-
-    a: (m, q, q); b: (m, q) or (m, q, r).  Returns (x, ok_after).  Bad windows get an
-    identity matrix before the solve so one of them cannot fail the whole batch.
-    """
-    eye = np.eye(a.shape[-1])
-    finite = np.isfinite(a).all(axis=(1, 2)) & np.isfinite(b).reshape(len(b), -1).all(axis=1)
-    ok = ok & finite
-    safe = np.where(ok[:, None, None], np.nan_to_num(a), eye)
-    ok = ok & (np.linalg.cond(safe) < _COND_LIMIT)
-    safe = np.where(ok[:, None, None], safe, eye)
-    rhs = np.nan_to_num(b)
-    x = np.linalg.solve(safe, rhs[..., None] if rhs.ndim == 2 else rhs)
-    x = x[..., 0] if rhs.ndim == 2 else x
-    return np.where(ok.reshape((-1,) + (1,) * (x.ndim - 1)), x, np.nan), ok
-
-
 def _wald_f(
     est: np.ndarray, cov: np.ndarray, df_resid: np.ndarray
 ) -> tuple[np.ndarray, np.ndarray]:
     """F = est' cov^-1 est / q with its upper-tail p from F(q, df_resid); NaN if singular."""
     q = est.shape[1]
     ok = np.isfinite(est).all(axis=1) & (df_resid > 0)
-    sol, ok = _batched_solve(cov, est, ok)
+    sol, ok = batched_solve(cov, est, ok)
     f_stat = np.einsum("mi,mi->m", np.nan_to_num(est), np.nan_to_num(sol)) / q
     f_stat = np.where(ok, f_stat, np.nan)
     return f_stat, stats.f.sf(f_stat, q, np.where(ok, df_resid, 1.0))
@@ -138,7 +119,7 @@ def forbidden_cue_decomposition(
     var_f = np.diagonal(s_ff, axis1=1, axis2=2)
     var_p = m_all[:, p_idx, p_idx]
 
-    reason = _judge_reasons(fits)
+    reason = judge_reasons(fits)
     fitted = reason == ""
     f_est = np.asarray(fits.estimable)[:, f_idx].all(axis=1)
     cue_why = np.asarray(fits.cue_reason, dtype=object)[:, f_idx[0]]
@@ -160,8 +141,8 @@ def forbidden_cue_decomposition(
     reason[bad_y] = "constant judgment"
     ok = reason == ""
 
-    disparity, ok_solve = _batched_solve(s_ff, s_fy, ok)
-    delta, _ = _batched_solve(s_ff, s_fp, ok_solve)
+    disparity, ok_solve = batched_solve(s_ff, s_fy, ok)
+    delta, _ = batched_solve(s_ff, s_fp, ok_solve)
     reason[ok & ~ok_solve] = "forbidden cue columns collinear in window"
     ok = ok_solve
     nan_m = np.where(ok, 1.0, np.nan)
@@ -328,146 +309,20 @@ def flag_forbidden(
     return out
 
 
-@dataclass(frozen=True)
-class WeightDrift:
-    """Change of the judge weights between two windows, per pair (arrays (m, k) or (m,)).
-
-    ``change`` = first - second; ``z`` its Wald statistic and ``p_value`` two-sided
-    normal.  ``joint_stat`` = d' (V1 + V2)^-1 d over the ``joint_df`` columns estimable in
-    both windows, ``joint_p`` from chi2(joint_df).  NaN with a ``reason`` where nothing
-    can be compared.
-    """
-
-    names: tuple[str, ...]
-    change: np.ndarray
-    std_error: np.ndarray
-    z: np.ndarray
-    p_value: np.ndarray
-    joint_stat: np.ndarray
-    joint_df: np.ndarray
-    joint_p: np.ndarray
-    reason: np.ndarray
-
-
-def weight_drift(first: LensFits, second: LensFits) -> WeightDrift:
-    """Wald tests of weight change between paired windows (row i of ``first`` vs ``second``).
-
-    The windows must not overlap: the two estimates are then independent and their
-    covariances add.  The joint test is the Wald form of the Chow test that allows each
-    window its own residual variance (unequal variances are the rule between quarters,
-    and the classic Chow F test is invalid then); with equal variances the two agree up
-    to the variance estimate and the F vs chi2 reference (see tests/test_policy.py).
-    The intercept is not tested: a level shift of all judgments is not a change of policy.
-    A cue not estimable in either window is left out of the joint test.
-    """
-    b1, b2 = np.asarray(first.weights, float), np.asarray(second.weights, float)
-    v1, v2 = np.asarray(first.cov, float), np.asarray(second.cov, float)
-    both = np.asarray(first.estimable) & np.asarray(second.estimable)
-    both &= np.isfinite(b1) & np.isfinite(b2)
-    fitted = (_judge_reasons(first) == "") & (_judge_reasons(second) == "")
-    both &= fitted[:, None]
-    change = np.where(both, b1 - b2, np.nan)
-    var = np.diagonal(v1, axis1=1, axis2=2) + np.diagonal(v2, axis1=1, axis2=2)
-    with np.errstate(invalid="ignore"):
-        se = np.where(both, np.sqrt(var), np.nan)
-        z = change / se
-    p = 2 * stats.norm.sf(np.abs(z))
-    # Columns outside the common set become identity rows with zero change, so every
-    # window solves at full size and the skipped columns add nothing to the statistic.
-    mask2 = both[:, :, None] & both[:, None, :]
-    eye = np.eye(b1.shape[1], dtype=bool)[None]
-    v = np.where(mask2, np.nan_to_num(v1 + v2), np.where(eye, 1.0, 0.0))
-    d = np.where(both, change, 0.0)
-    df = both.sum(axis=1)
-    sol, ok = _batched_solve(v, d, df > 0)
-    joint = np.where(ok, np.einsum("mi,mi->m", d, np.nan_to_num(sol)), np.nan)
-    reason = np.full(len(df), "", dtype=object)
-    reason[~fitted] = "a window of the pair was not fitted"
-    reason[fitted & (df == 0)] = "no cue estimable in both windows"
-    reason[fitted & (df > 0) & ~ok] = "weight covariance singular"
-    return WeightDrift(
-        names=tuple(first.names),
-        change=change,
-        std_error=se,
-        z=z,
-        p_value=p,
-        joint_stat=joint,
-        joint_df=df,
-        joint_p=stats.chi2.sf(joint, np.maximum(df, 1)),
-        reason=reason,
-    )
-
-
-@dataclass(frozen=True)
-class FloorCheck:
-    """Per-window floor verdict: ``flagged`` only where ``assessable`` (both (m,) bool)."""
-
-    flagged: np.ndarray
-    assessable: np.ndarray
-
-
-def below_floor(value: np.ndarray, n: np.ndarray, *, floor: float, min_n: int) -> FloorCheck:
-    """Flag windows whose ``value`` is below ``floor``, given at least ``min_n`` rows.
-
-    A NaN value (e.g. R_s of a constant judgment) or too few rows is not assessable,
-    never a flag: a floor should fire on evidence, not on missing data.
-    """
-    value = np.asarray(value, dtype=float)
-    assessable = np.isfinite(value) & (np.asarray(n) >= min_n)
-    with np.errstate(invalid="ignore"):
-        return FloorCheck(assessable & (value < floor), assessable)
-
-
-def consistency_floor(fits: LensFits, *, floor: float, min_rows: int) -> FloorCheck:
-    """Consistency R_s below ``floor`` on windows with at least ``min_rows`` decisions."""
-    return below_floor(fits.R_s, fits.n, floor=floor, min_n=min_rows)
-
-
-def achievement_floor(fits: LensFits, *, floor: float, min_linked: int) -> FloorCheck:
-    """Achievement r_a below ``floor`` on windows with at least ``min_linked`` outcomes."""
-    return below_floor(fits.r_a, fits.n_linked, floor=floor, min_n=min_linked)
-
-
-def window_states(flagged: np.ndarray, assessable: np.ndarray) -> list[bool | None]:
-    """Per-window states for ``episodes``: True flagged, False clear, None not assessable."""
-    return [bool(f) if a else None for f, a in zip(flagged, assessable, strict=True)]
-
-
-@dataclass(frozen=True)
-class Episode:
-    """An alert episode: opened at window ``open_index``; ``resolve_index`` None if open."""
-
-    open_index: int
-    resolve_index: int | None
-
-
-def episodes(states: Sequence[bool | None], consecutive_windows: int) -> list[Episode]:
-    """Alert episodes of one (decision-maker, kind, cue) key over its ordered windows.
-
-    An episode opens at the window that completes a run of ``consecutive_windows``
-    flagged windows and resolves at the window that completes a run of as many clear
-    ones.  A None window (not assessable) is skipped: it neither counts towards nor
-    breaks a run, because missing evidence is not evidence either way.  So with N >= 2 a
-    single noisy window can neither open nor close an episode.
-    """
-    if consecutive_windows < 1:
-        raise ValueError("consecutive_windows must be at least 1")
-    found: list[Episode] = []
-    opened: int | None = None
-    run = 0
-    for i, state in enumerate(states):
-        if state is None:
-            continue
-        # While closed we count flags, while open we count clears; anything else resets.
-        run = run + 1 if bool(state) == (opened is None) else 0
-        if run < consecutive_windows:
-            continue
-        run = 0
-        if opened is None:
-            opened = i
-        else:
-            found.append(Episode(opened, i))
-            opened = None
-    if opened is not None:
-        found.append(Episode(opened, None))
-    return found
+__all__ = [
+    "Episode",
+    "FloorCheck",
+    "ForbiddenCueDecomposition",
+    "ForbiddenCueFlags",
+    "WeightDrift",
+    "achievement_floor",
+    "below_floor",
+    "bh_qvalues",
+    "consistency_floor",
+    "cue_columns",
+    "episodes",
+    "flag_forbidden",
+    "forbidden_cue_decomposition",
+    "weight_drift",
+    "window_states",
+]

@@ -406,7 +406,7 @@ def test_ack_and_alerts_json_through_the_command_line(demo_config, tmp_path):
     proc = run_cli(cfg_path, "ack", str(target["id"]), "--by", "A. Auditor", "--note", "reviewed")
     after = datetime.now(UTC)
     assert proc.returncode == 0, text(proc)
-    acked = json.loads(text(run_cli(cfg_path, "alerts", "--state", "acknowledged", "--json"))[0])
+    acked = list_alerts(load_config(cfg_path), "acknowledged")
     assert [d["id"] for d in acked] == [target["id"]]
     a = acked[0]
     assert (a["state"], a["acknowledged_by"], a["note"]) == (

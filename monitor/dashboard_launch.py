@@ -1,0 +1,52 @@
+"""Starting the dashboard: the Streamlit command line and the process that runs it."""
+
+from __future__ import annotations
+
+import subprocess
+import sys
+from pathlib import Path
+
+from monitor.config import Config
+
+# Our own palette, passed as theme options so no file outside the package is needed.
+THEME = {
+    "theme.base": "light",
+    "theme.primaryColor": "#1f6f78",
+    "theme.backgroundColor": "#fbfaf7",
+    "theme.secondaryBackgroundColor": "#eef2ef",
+    "theme.textColor": "#1d2b2f",
+}
+
+
+def app_path() -> Path:
+    """dashboards/app.py beside the ``monitor`` package (a source or editable install)."""
+    path = Path(__file__).resolve().parent.parent / "dashboards" / "app.py"
+    if not path.exists():
+        raise FileNotFoundError(
+            f"the dashboard app was not found at {path}; install cuewatch from its source "
+            "folder (pip install -e .)."
+        )
+    return path
+
+
+def launch_command(config: Config, port: int) -> list[str]:
+    cmd = [sys.executable, "-m", "streamlit", "run", str(app_path()),
+           "--server.address", "127.0.0.1", "--server.port", str(int(port)),
+           "--server.headless", "true", "--browser.gatherUsageStats", "false"]  # fmt: skip
+    for key, value in THEME.items():
+        cmd += [f"--{key}", value]
+    return [*cmd, "--", "--config", str(config.source)]
+
+
+def launch(config: Config, port: int) -> int:
+    """Run the Streamlit app on 127.0.0.1:``port`` until it stops; its exit code."""
+    proc = subprocess.Popen(launch_command(config, port))
+    try:
+        return proc.wait()
+    except KeyboardInterrupt:
+        proc.terminate()
+        try:
+            return proc.wait(timeout=10)
+        except subprocess.TimeoutExpired:
+            proc.kill()
+            return proc.wait()
