@@ -218,6 +218,15 @@ class IngestConfig(_Strict):
     encoding: str = "utf-8"
     future_tolerance_hours: float = Field(24.0, ge=0)
     earliest: str = "1990-01-01"
+    # DuckDB's memory limit while ingesting: large files spill to disk beyond it.
+    memory_limit: str = "768MB"
+
+    @field_validator("memory_limit")
+    @classmethod
+    def _size(cls, value: str) -> str:
+        if not re.fullmatch(r"\s*\d+(\.\d+)?\s*(B|KB|MB|GB|KiB|MiB|GiB)\s*", value, re.IGNORECASE):
+            raise ValueError("memory_limit must be a size such as '768MB' or '2GB'")
+        return value.strip()
 
 
 class Config(_Strict):
@@ -282,7 +291,7 @@ class Config(_Strict):
 
 
 def _location(loc: tuple) -> str:
-    return ".".join(str(p) for p in loc if not isinstance(p, int) or True)
+    return ".".join(str(p) for p in loc)
 
 
 def _first_error(exc: ValidationError, source: Path) -> ConfigError:

@@ -46,7 +46,6 @@ FORMATS = {
 
 
 # DuckDB's working-memory cap during ingest (measured: benchmarks/README.md).
-INGEST_MEMORY_LIMIT = "768MB"
 
 
 class IngestUsageError(Exception):
@@ -234,7 +233,7 @@ def ingest(
             # Staging tables of a large file would otherwise grow in memory up to
             # DuckDB's default limit (80% of RAM); past this limit they spill to the
             # store's temporary folder (<store>.tmp), which keeps peak RSS bounded.
-            con.execute(f"SET memory_limit = {sql_literal(INGEST_MEMORY_LIMIT)}")
+            con.execute(f"SET memory_limit = {sql_literal(config.ingest.memory_limit)}")
             for i, (path, k) in enumerate(plan):
                 if on_file:
                     on_file(i, len(plan), path)

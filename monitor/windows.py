@@ -156,8 +156,13 @@ def build_series(frame: dict[str, np.ndarray], layout: MomentLayout) -> dict[str
     days = np.asarray(frame["day_number"], dtype=np.int64)
     team = np.asarray(frame["team"], dtype=object)
     order = np.lexsort((days, dm))
-    dm, days, team = dm[order], days[order], team[order]
-    all_rows, linked = layout.to_moments({k: np.asarray(v)[order] for k, v in frame.items()})
+    if np.array_equal(order, np.arange(len(order))):
+        arrays = frame  # fetched in order already: skip a copy of every column
+    else:
+        arrays = {k: np.asarray(v)[order] for k, v in frame.items()}
+        dm, days, team = dm[order], days[order], team[order]
+    all_rows, linked = layout.to_moments(arrays)
+    del arrays
     keys, entity = (
         np.unique(dm, return_inverse=True)
         if len(dm)
@@ -322,7 +327,9 @@ def _refit_full(con, config: Config, sig: str) -> RefitSummary:
     n_buckets = len(frame["day_number"])
     last_day = _last_day(con)
     fitted = refitted = 0
-    for _scope, series in build_series(frame, layout).items():
+    every = build_series(frame, layout)
+    del frame  # the wide fetched columns are no longer needed: lower peak memory
+    for _scope, series in every.items():
         ent, end, start, stop = plan_windows(config, series, None, last_day)
         fitted_n, refit_n = _fit_and_write(con, config, sig, series, ent, end, start, stop)
         fitted += fitted_n
@@ -409,7 +416,9 @@ def _refit_incremental(con, config: Config, sig: str) -> RefitSummary:
         return RefitSummary("incremental", int(n_dirty), len(dirty), 0, 0, 0.0)
     frame = _fetch_buckets(con, layout, (lo, hi))
     fitted = refitted = 0
-    for scope, series in build_series(frame, layout).items():
+    every = build_series(frame, layout)
+    del frame
+    for scope, series in every.items():
         ent, end, start, stop = plan_windows(config, series, wanted[scope], last_day)
         _delete_windows(con, scope, wanted[scope])
         fitted_n, refit_n = _fit_and_write(con, config, sig, series, ent, end, start, stop)

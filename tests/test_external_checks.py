@@ -217,3 +217,104 @@ def test_resume_experiment_race_weight_with_resume_cues_matches_statsmodels(tmp_
     # The race gap survives the resume cues (Bertrand & Mullainathan 2004): a negative
     # weight whose interval excludes zero.
     assert got.loc["race=b", "ci_high"] < 0
+
+
+# --------------------------------------------------------------------------- demo store
+
+
+@pytest.fixture(scope="module")
+def demo(tmp_path_factory) -> Config:
+    from demo_store import build_demo_store
+
+    return load_config(build_demo_store(tmp_path_factory.mktemp("demo")))
+
+
+def _design(config: Config, rows: pd.DataFrame) -> pd.DataFrame:
+    """Design columns built here from the raw cue values, independently of the store's
+    SQL: numeric and binary cues as they are, one 0/1 dummy per non-reference level."""
+    out = pd.DataFrame(index=rows.index)
+    for name, cue in config.cues.items():
+        if cue.type == "categorical":
+            for level in cue.levels:
+                if level != cue.reference:
+                    out[f"{name}={level}"] = (rows[name] == level).astype(float)
+        else:
+            out[name] = rows[name].astype(float)
+    return out
+
+
+def _window_rows(config: Config, fit: pd.Series) -> pd.DataFrame:
+    """The window's raw rows, fetched with plain SQL from the analysts' view."""
+    who = {"decision_maker": "decision_maker = ?", "team": "team = ?", "all": "? = 'all'"}
+    cues = " AND ".join(f'"{c}" IS NOT NULL' for c in config.cues)
+    con = duckdb.connect(str(config.store.path), read_only=True)
+    try:
+        return con.execute(
+            f"SELECT * FROM decisions_with_outcome WHERE {who[fit['scope']]} "
+            f"AND decided_day BETWEEN ? AND ? AND {cues}",
+            [fit["decision_maker"], fit["window_start"], fit["window_end"]],
+        ).df()
+    finally:
+        con.close()
+
+
+def _close(got, want, rtol: float, floor: np.ndarray) -> None:
+    """|got - want| <= rtol |want| + floor, element by element (floor per element)."""
+    got, want = np.asarray(got, float), np.asarray(want, float)
+    bad = np.abs(got - want) > rtol * np.abs(want) + floor
+    assert not bad.any(), f"got {got[bad]}, want {want[bad]}"
+
+
+def test_random_stored_windows_match_statsmodels(demo):
+    con = duckdb.connect(str(demo.store.path), read_only=True)
+    try:
+        fits = con.execute(
+            "SELECT * FROM fits WHERE method = 'moments' AND n_linked >= 200 "
+            "AND reason IS NULL ORDER BY scope, decision_maker, window_end"
+        ).df()
+        cues = con.execute("SELECT * FROM cue_weights ORDER BY cue_index").df()
+    finally:
+        con.close()
+    rng = np.random.default_rng(2024)
+    picks = [rng.choice(np.flatnonzero(fits["scope"] == s), size=n, replace=False)
+             for s, n in (("decision_maker", 8), ("team", 3), ("all", 1))]  # fmt: skip
+    for i in np.concatenate(picks):
+        fit = fits.iloc[i]
+        mine = cues[(cues["scope"] == fit["scope"]) & (cues["decision_maker"] == fit["decision_maker"])
+                    & (cues["window_end"] == fit["window_end"])]  # fmt: skip
+        rows = _window_rows(demo, fit)
+        assert len(rows) == fit["n_decisions"]
+        x = _design(demo, rows)
+        assert list(x.columns) == list(mine["cue"])
+        # Reference: statsmodels OLS on the raw rows (judge model: every row).
+        ref = sm.OLS(rows["judgment"].to_numpy(), sm.add_constant(x.to_numpy())).fit()
+        se = ref.bse[1:]
+        # 1e-9 relative; a weight near zero is held to 1e-9 of its standard error.
+        _close(mine["weight"], ref.params[1:], 1e-9, 1e-9 * se)
+        np.testing.assert_allclose(mine["std_error"], se, rtol=1e-9)
+        np.testing.assert_allclose(fit["R_s"] ** 2, ref.rsquared, rtol=1e-9)
+        # Environment model on the linked rows only.
+        keep = rows["criterion"].notna().to_numpy()
+        assert keep.sum() == fit["n_linked"]
+        env = sm.OLS(rows["criterion"].to_numpy()[keep], sm.add_constant(x.to_numpy()[keep])).fit()
+        np.testing.assert_allclose(fit["R_e"] ** 2, env.rsquared, rtol=1e-9)
+        _close(mine["env_weight"], env.params[1:], 1e-9, 1e-9 * env.bse[1:])
+
+
+def test_lens_model_equation_holds_on_every_stored_window_with_outcomes(demo):
+    con = duckdb.connect(str(demo.store.path), read_only=True)
+    try:
+        f = con.execute(
+            "SELECT r_a, G, C, R_e, R_s_linked FROM fits WHERE r_a IS NOT NULL "
+            "AND G IS NOT NULL AND C IS NOT NULL"
+        ).df()
+        total = con.execute("SELECT count(*) FROM fits WHERE n_linked > 0").fetchone()[0]
+    finally:
+        con.close()
+    assert len(f) > 100 and len(f) >= 0.5 * total
+    # Tucker (1964) lens model equation, exact in-sample when both models are fitted on
+    # the same linked rows: r_a = G R_e R_s + C sqrt(1 - R_e^2) sqrt(1 - R_s^2).
+    rhs = f["G"] * f["R_e"] * f["R_s_linked"] + f["C"] * np.sqrt(1 - f["R_e"] ** 2) * np.sqrt(
+        1 - f["R_s_linked"] ** 2
+    )
+    np.testing.assert_allclose(f["r_a"], rhs, rtol=0, atol=1e-10)

@@ -164,7 +164,7 @@ def test_second_writer_gives_up_after_lock_timeout(tmp_path):
         assert proc.returncode == 2, (out, err)
         assert "Traceback" not in err
         assert "lock" in err and f"pid {holder.pid}" in err, err
-        assert elapsed < 6, elapsed  # 1 s lock timeout plus interpreter start-up
+        assert elapsed < 10, elapsed  # 1 s lock timeout plus start-up on a loaded machine
     finally:
         holder.kill()
         holder.wait()

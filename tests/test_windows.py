@@ -483,3 +483,44 @@ def test_poorly_conditioned_window_is_refit_from_raw_rows(tmp_path):
     ref = sm.OLS(y, sm.add_constant(x)).fit()
     np.testing.assert_allclose(cues["weight"], ref.params[1:], rtol=1e-6)
     np.testing.assert_allclose(cues["std_error"], ref.bse[1:], rtol=1e-6)
+
+
+# --------------------------------------------------------------------------- window merges
+
+
+def test_fixed_window_and_segment_merges_equal_statistics_of_the_raw_rows():
+    from monitor.moments import Moments, fixed_window_sums, moments_from_rows, segment_sums
+
+    rng = np.random.default_rng(8)
+    rows, parts, group, day = [], [], [], []
+    for g in range(3):
+        for d in np.sort(rng.choice(np.arange(1000, 1400), size=120, replace=False)):
+            z = rng.normal(size=(int(rng.integers(1, 5)), 3)) + [1e4, 0.0, 5.0]
+            rows.append((g, int(d), z))
+            parts.append(moments_from_rows(z))
+            group.append(g)
+            day.append(int(d))
+    buckets = Moments(*(np.concatenate([getattr(m, f) for m in parts])
+                        for f in ("n", "mean", "comoment")))  # fmt: skip
+    win_group = np.repeat(np.arange(3), 62)
+    win_end = np.tile(np.arange(990, 1424, 7), 3)
+    got = fixed_window_sums(buckets, np.array(group), np.array(day), win_group, win_end, 90)
+    for w, (g, e) in enumerate(zip(win_group, win_end, strict=True)):
+        z = [r for gg, d, r in rows if gg == g and e - 89 <= d <= e]
+        if not z:
+            assert got.n[w] == 0
+            continue
+        # Reference: the two-pass statistics of the window's raw rows (numpy).
+        ref = moments_from_rows(np.vstack(z))
+        scale = np.sqrt(np.outer(np.diag(ref.comoment[0]), np.diag(ref.comoment[0])))
+        assert got.n[w] == ref.n[0]
+        np.testing.assert_allclose(got.mean[w], ref.mean[0], rtol=1e-14, atol=1e-14)  # sd ~ 1
+        # A cue with mean 1e4 and sd 1 carries ~1e-12 rounding in its input values.
+        assert np.all(np.abs(got.comoment[w] - ref.comoment[0]) <= 1e-11 * scale)
+    starts = np.ones(len(day), dtype=bool)
+    starts[1:] = np.array(day[1:]) // 10 != np.array(day[:-1]) // 10
+    seg = segment_sums(buckets, starts)
+    cut = np.append(np.flatnonzero(starts), len(day))
+    for s, (a, b) in enumerate(zip(cut[:-1], cut[1:], strict=True)):
+        ref = moments_from_rows(np.vstack([r for _, _, r in rows[a:b]]))
+        np.testing.assert_allclose(seg.comoment[s], ref.comoment[0], rtol=1e-9, atol=1e-9)
