@@ -33,6 +33,7 @@ from monitor.store import Store, quote_ident, sql_literal, utc_now
 EPOCH = date(1970, 1, 1)
 SCOPES = ("decision_maker", "team", "all")
 ALL_KEY = "all"
+BUCKET_LAYOUT = "shifted-sums-2"
 
 
 class RefitUsageError(Exception):
@@ -55,6 +56,9 @@ def design_signature(config: Config) -> str:
         for name, c in config.cues.items()
     }
     doc["__columns__"] = config.design_columns()
+    # The bucket_stats layout (MomentLayout.columns): a store written with another
+    # layout is rebuilt by a full refit instead of failing on a missing column.
+    doc["__bucket_layout__"] = BUCKET_LAYOUT
     return hashlib.sha256(json.dumps(doc, sort_keys=True).encode()).hexdigest()[:16]
 
 
