@@ -108,9 +108,9 @@ def _write_findings(con, findings: pd.DataFrame, proxies: pd.DataFrame, now: dat
     con.execute("DELETE FROM policy_findings")
     con.execute("DELETE FROM policy_proxy_parts")
     if len(findings):
+        # DuckDB reads pandas NaN as NULL: "not estimable" stays missing in SQL.
         f = findings.copy()
         f.insert(0, "evaluated_at", now)
-        f = f.astype(object).where(f.notna(), None)
         con.register("_findings", f)
         try:
             cols = ", ".join(quote_ident(c) for c in f.columns)
@@ -120,7 +120,6 @@ def _write_findings(con, findings: pd.DataFrame, proxies: pd.DataFrame, now: dat
     if len(proxies):
         p = proxies.copy()
         p.insert(0, "evaluated_at", now)
-        p = p.astype(object).where(p.notna(), None)
         con.register("_proxies", p)
         try:
             cols = ", ".join(quote_ident(c) for c in p.columns)

@@ -484,12 +484,42 @@ def schedule(obj: Context) -> None:
 @click.option(
     "--port", type=int, default=8501, show_default=True, help="Dashboard port on 127.0.0.1."
 )
+@click.option(
+    "--days",
+    type=click.IntRange(28, 730),
+    default=730,
+    show_default=True,
+    help="Days of decisions in the scenario (fewer = a quicker try).",
+)
+@click.option(
+    "--handlers",
+    type=click.IntRange(6, 200),
+    default=36,
+    show_default=True,
+    help="Claims handlers in the scenario.",
+)
+@click.option(
+    "--daily-tail",
+    "tail_days",
+    type=click.IntRange(0, 365),
+    default=35,
+    show_default=True,
+    help="The last N days arrive one nightly run per day (after a backfill).",
+)
 @handles_user_errors
-def demo(demo_dir: str, no_dashboard: bool, port: int) -> None:
+def demo(
+    demo_dir: str, no_dashboard: bool, port: int, days: int, handlers: int, tail_days: int
+) -> None:
     """The Ostwyn Mutual scenario end to end: generate, nightly runs, alerts, audit, dashboard."""
     from monitor.demo import run_demo
 
-    result = run_demo(Path(demo_dir).resolve(), say=click.echo)
+    result = run_demo(
+        Path(demo_dir).resolve(),
+        say=click.echo,
+        days=days,
+        n_handlers=handlers,
+        tail_days=tail_days,
+    )
     alerts = result["alerts"]
     click.echo(f"\nStore and config: {result['config']}")
     click.echo(

@@ -32,7 +32,8 @@ def app_path() -> Path:
 def launch_command(config: Config, port: int) -> list[str]:
     cmd = [sys.executable, "-m", "streamlit", "run", str(app_path()),
            "--server.address", "127.0.0.1", "--server.port", str(int(port)),
-           "--server.headless", "true", "--browser.gatherUsageStats", "false"]  # fmt: skip
+           "--server.headless", "true", "--browser.gatherUsageStats", "false",
+           "--client.toolbarMode", "viewer"]  # fmt: skip
     for key, value in THEME.items():
         cmd += [f"--{key}", value]
     return [*cmd, "--", "--config", str(config.source)]

@@ -16,7 +16,7 @@ from pathlib import Path
 from monitor.config import Config, load_config
 
 REPO_CONFIG = Path(__file__).resolve().parent.parent / "config" / "ostwyn.toml"
-WEEKLY_TAIL_DAYS = 91  # the last 13 weeks arrive week by week
+DAILY_TAIL_DAYS = 35  # the last five weeks arrive day by day
 
 
 def write_demo_config(demo_dir: Path) -> Path:
@@ -60,9 +60,15 @@ def prepare(demo_dir: Path, *, seed: int = 7, days: int = 730, n_handlers: int =
     return config
 
 
-def play(config: Config, scenario: Path, *, say: Callable[[str], None] = print) -> list[dict]:
+def play(
+    config: Config,
+    scenario: Path,
+    *,
+    say: Callable[[str], None] = print,
+    tail_days: int = DAILY_TAIL_DAYS,
+) -> list[dict]:
     """Drop the scenario's daily files into the landing folders and run the nightly
-    job: once for the backfill, then once per week.  Returns the nightly summaries."""
+    job: once for the backfill, then once per day.  Returns the nightly summaries."""
     from monitor.nightly import run_nightly
     from monitor.store import Store
     from synthetic_logs.ostwyn import day_files
@@ -70,11 +76,9 @@ def play(config: Config, scenario: Path, *, say: Callable[[str], None] = print) 
     Store(config).init()
     arrivals = day_files(scenario)
     last_day = arrivals[-1][0]
-    cutoff = date.fromordinal(last_day.toordinal() - WEEKLY_TAIL_DAYS)
+    cutoff = date.fromordinal(last_day.toordinal() - tail_days)
     batches: list[list[tuple[date, list[Path]]]] = [[a for a in arrivals if a[0] <= cutoff]]
-    tail = [a for a in arrivals if a[0] > cutoff]
-    for i in range(0, len(tail), 7):
-        batches.append(tail[i : i + 7])
+    batches += [[a] for a in arrivals if a[0] > cutoff]
     summaries = []
     for i, batch in enumerate(batches):
         for _, files in batch:
@@ -86,10 +90,10 @@ def play(config: Config, scenario: Path, *, say: Callable[[str], None] = print) 
                 )
                 shutil.copy2(f, Path(landing) / f.name)
         s = run_nightly(config)
-        label = "backfill" if i == 0 else f"week {i:2d}"
+        label = "backfill" if i == 0 else str(batch[-1][0])
         assess = s.assess
         say(
-            f"  nightly {label} (to {batch[-1][0]}): +{s.ingest['accepted']} rows, "
+            f"  nightly {label}{f' (to {batch[-1][0]})' if i == 0 else ''}: +{s.ingest['accepted']} rows, "
             f"{s.ingest['quarantined']} quarantined, {s.refit.get('windows_fitted', 0)} windows refit, "
             f"alerts +{len(assess.get('opened', []))} opened / {len(assess.get('resolved', []))} resolved"
         )
@@ -109,12 +113,13 @@ def run_demo(
     export: bool = True,
     days: int = 730,
     n_handlers: int = 36,
+    tail_days: int = DAILY_TAIL_DAYS,
 ) -> dict:
     """The whole demo; returns what a test needs to check it."""
     say(f"Generating the Ostwyn Mutual scenario in {demo_dir / 'scenario'} ...")
     config = prepare(demo_dir, days=days, n_handlers=n_handlers)
     say("Playing the daily logs into the landing folders and running the nightly job:")
-    summaries = play(config, demo_dir / "scenario", say=say)
+    summaries = play(config, demo_dir / "scenario", say=say, tail_days=tail_days)
     from monitor.alerts import list_alerts
 
     alerts = list_alerts(config)
