@@ -6,13 +6,13 @@ one staging table per file, CASE expressions for the checks), so large files str
 with bounded memory and no Python loop runs per row.  Every input record ends up in
 exactly one place: ``decisions`` / ``outcomes`` (accepted), ``quarantine`` (with a
 reason code and a one-line message) or the batch's duplicate count (identical to
-what is already stored).
+what is already stored).  Which files to read is decided in monitor.ingest_files, the
+per-record checks are built in monitor.ingest_checks and the write statements in
+monitor.ingest_writes; this module runs them, one file at a time.
 """
 
 from __future__ import annotations
 
-import csv
-import hashlib
 import shutil
 import sys
 import tempfile
@@ -25,31 +25,22 @@ import duckdb
 
 from monitor import __version__
 from monitor.config import Config
-from monitor.ingest_checks import (
-    KINDS,
-    FileRejected,
-    build_checks,
-    reader_sql,
+from monitor.ingest_checks import FileRejected, build_checks, reader_sql
+from monitor.ingest_files import (
+    FORMATS,
+    IngestUsageError,
+    detect_format,
+    file_sha256,
+    plan_files,
+    present_columns,
+)
+from monitor.ingest_writes import (
+    classify_duplicates_sql,
+    insert_sql,
+    mark_dirty_sql,
+    quarantine_sql,
 )
 from monitor.store import Store, quote_ident, sql_literal, utc_now
-
-FORMATS = {
-    ".csv": "csv",
-    ".tsv": "csv",
-    ".txt": "csv",
-    ".jsonl": "jsonl",
-    ".ndjson": "jsonl",
-    ".json": "jsonl",
-    ".parquet": "parquet",
-    ".pq": "parquet",
-}
-
-
-# DuckDB's working-memory cap during ingest (measured: benchmarks/README.md).
-
-
-class IngestUsageError(Exception):
-    """A user error in the ingest command itself (bad path, unknown kind, ...)."""
 
 
 @dataclass
@@ -109,91 +100,6 @@ class IngestSummary:
             "failed_files": len(self.failed_files),
             "quarantine_reasons": self.quarantine_reasons,
         }
-
-
-# --- finding the files ----------------------------------------------------------------
-
-
-def detect_format(path: Path) -> str:
-    fmt = FORMATS.get(path.suffix.lower())
-    if fmt is None:
-        raise FileRejected(
-            f"unknown file type '{path.suffix}' (expected .csv, .tsv, .jsonl or .parquet)"
-        )
-    return fmt
-
-
-def plan_files(config: Config, paths: Iterable[str], kind: str | None) -> list[tuple[Path, str]]:
-    """Resolve the command's paths to (file, kind) pairs in a stable order.
-
-    No paths: the configured landing folders.  A folder: its data files, sorted by
-    name.  The kind comes from ``kind`` or, failing that, from which landing folder
-    the file lies under.
-    """
-    if kind is not None and kind not in KINDS:
-        raise IngestUsageError(f"--kind must be one of {', '.join(KINDS)}, not '{kind}'.")
-    landings = _landings(config)
-    paths = list(paths)
-    if not paths:
-        if not landings:
-            raise IngestUsageError("no paths given and no landing folders configured.")
-        out: list[tuple[Path, str]] = []
-        for k, folder in landings.items():
-            if kind is None or kind == k:
-                out.extend((f, k) for f in _data_files(folder) if folder.exists())
-        return out
-    out = []
-    for raw in paths:
-        p = Path(raw).expanduser().resolve()
-        if not p.exists():
-            raise IngestUsageError(f"no such file or folder: {raw}.")
-        files = _data_files(p) if p.is_dir() else [p]
-        for f in files:
-            k = kind or _kind_from_landing(f, landings)
-            if k is None:
-                raise IngestUsageError(
-                    f"cannot tell whether {f} holds decisions or outcomes: "
-                    "put it in a landing folder or pass --kind."
-                )
-            out.append((f, k))
-    return out
-
-
-def _landings(config: Config) -> dict[str, Path]:
-    out = {}
-    if config.decisions.landing:
-        out["decisions"] = Path(config.decisions.landing)
-    if config.outcomes is not None and config.outcomes.landing:
-        out["outcomes"] = Path(config.outcomes.landing)
-    return out
-
-
-def _data_files(folder: Path) -> list[Path]:
-    if not folder.exists():
-        return []
-    return sorted(
-        p
-        for p in folder.rglob("*")
-        if p.is_file() and p.suffix.lower() in FORMATS and not p.name.startswith(".")
-    )
-
-
-def _kind_from_landing(path: Path, landings: dict[str, Path]) -> str | None:
-    for k, folder in landings.items():
-        try:
-            path.relative_to(folder.resolve())
-            return k
-        except ValueError:
-            continue
-    return None
-
-
-def file_sha256(path: Path) -> str:
-    h = hashlib.sha256()
-    with open(path, "rb") as fh:
-        for chunk in iter(lambda: fh.read(1 << 20), b""):
-            h.update(chunk)
-    return h.hexdigest()
 
 
 # --- the ingest itself ----------------------------------------------------------------
@@ -322,7 +228,7 @@ def _stage(
     """Read and check one file into temporary tables (outside the write transaction,
     so a record's ordinal is its rowid).  Returns the number of lines the CSV reader
     rejected outright."""
-    present = _present_columns(con, config, path, fmt)
+    present = present_columns(con, config, path, fmt)
     checks.require_columns(present, label)
 
     # 1. Stage the needed columns as text, in file order (rowid = record ordinal).
@@ -353,7 +259,7 @@ def _stage(
 
     # 3. Duplicates: identical to what is stored (or earlier in the file) -> counted;
     #    a stored decision with different content -> quarantined, never overwritten.
-    con.execute(checks.classify_duplicates_sql())
+    con.execute(classify_duplicates_sql(checks))
     return rejected_lines
 
 
@@ -373,9 +279,9 @@ def _write_batch(
     kind = checks.kind
     batch_id = con.execute("SELECT nextval('batch_ids')").fetchone()[0]
     ingested_at = utc_now()
-    accepted = con.execute(checks.insert_sql(batch_id, ingested_at)).fetchone()
+    accepted = con.execute(insert_sql(checks, batch_id, ingested_at)).fetchone()
     accepted = int(accepted[0]) if accepted else 0
-    con.execute(checks.quarantine_sql(batch_id, ingested_at, fmt))
+    con.execute(quarantine_sql(checks, batch_id, ingested_at, fmt))
     if rejected_lines:
         con.execute(
             "INSERT INTO quarantine SELECT ?, ?, line, NULL, 'malformed_record', "
@@ -384,7 +290,7 @@ def _write_batch(
             "FROM _rejects ORDER BY line",
             [batch_id, kind, ingested_at],
         )
-    con.execute(checks.mark_dirty_sql(ingested_at))
+    con.execute(mark_dirty_sql(checks, ingested_at))
 
     counts = con.execute(
         "SELECT count(*), count(*) FILTER (WHERE is_duplicate) FROM _checked WHERE NOT is_blank"
@@ -435,32 +341,6 @@ def _write_batch(
     )
 
 
-def _present_columns(
-    con: duckdb.DuckDBPyConnection, config: Config, path: Path, fmt: str
-) -> list[str]:
-    """The columns the file offers (CSV header / Parquet schema); JSON Lines is open (empty)."""
-    if fmt == "jsonl":
-        return []  # keys are looked up per record; a missing key is a missing field
-    if fmt == "parquet":
-        rows = con.execute(f"DESCRIBE SELECT * FROM read_parquet({sql_literal(str(path))})")
-        return [r[0] for r in rows.fetchall()]
-    # The header is read here rather than by DuckDB's sniffer, which can give up on a
-    # file whose first rows are malformed; DuckDB then reads with fixed settings.
-    with open(path, encoding=_python_encoding(config.ingest.encoding), newline="") as fh:
-        header = next(csv.reader(fh, delimiter=config.ingest.delimiter), None)
-    if not header:
-        raise FileRejected(f"{path} is empty or has no header row")
-    header[0] = header[0].lstrip("\ufeff")
-    names = [h.strip() for h in header]
-    if len(set(names)) != len(names):
-        raise FileRejected(f"{path} repeats a column name in its header")
-    return names
-
-
-def _python_encoding(name: str) -> str:
-    return {"utf-8": "utf-8-sig", "utf8": "utf-8-sig"}.get(name.lower(), name)
-
-
 def _stage_csv_rejects(con: duckdb.DuckDBPyConnection) -> int:
     try:
         con.execute(
@@ -475,10 +355,13 @@ def _stage_csv_rejects(con: duckdb.DuckDBPyConnection) -> int:
 
 
 __all__ = [
+    "FORMATS",
     "FileRejected",
     "FileResult",
     "IngestSummary",
     "IngestUsageError",
+    "detect_format",
+    "file_sha256",
     "ingest",
     "plan_files",
     "quote_ident",

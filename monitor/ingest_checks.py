@@ -2,7 +2,8 @@
 
 Every reason code a record can be quarantined with is listed in ``REASONS``; the
 first failing check (in the order of that list) names the reason.  All identifiers
-and literals that come from the configuration go through the store's quoting.
+and literals that come from the configuration go through the store's quoting.  What
+happens to the checked records next (duplicates, the writes) is in monitor.ingest_writes.
 """
 
 from __future__ import annotations
@@ -186,8 +187,8 @@ class Checks:
         ``csv_rejects``: whether the CSV reader rejected any line (when it did not, a
         record's line number is simply its ordinal + 2).  The raw record is kept as
         text columns (and raw_line for JSON Lines); its JSON form and the message are
-        built only for quarantined records, in ``quarantine_sql`` (message is NULL
-        here unless a later step sets it)."""
+        built only for quarantined records, in ``ingest_writes.quarantine_sql``
+        (message is NULL here unless a later step sets it)."""
         parsed, checks = self._parse_and_checks(horizon, earliest)
         reason = "CASE " + " ".join(f"WHEN {w} THEN '{r}'" for w, r, _ in checks) + " END"
         line = self._line_expr(fmt, csv_rejects)
@@ -257,17 +258,6 @@ class Checks:
         o = self.config.outcomes
         return o.criterion_values, o.criterion_range, "criterion"
 
-    def _raw_json_expr(self, fmt: str) -> str:
-        # raw_row is always JSON text: the record itself, or (when it is not a JSON
-        # object) the line as a JSON string, so json.loads gives back the exact text.
-        if fmt == "jsonl":
-            return (
-                "CASE WHEN reason = 'malformed_record' THEN CAST(to_json(raw_line) AS VARCHAR) "
-                "ELSE raw_line END"
-            )
-        pairs = ", ".join(f"{lit(c.source)}, {c.alias}" for c in self.columns)
-        return f"CAST(json_object({pairs}) AS VARCHAR)"
-
     def _line_expr(self, fmt: str, csv_rejects: bool = True) -> str:
         if fmt == "jsonl":
             return "ord + 1"
@@ -281,111 +271,11 @@ class Checks:
             "FROM (SELECT DISTINCT line FROM _rejects)) WHERE t <= ord + 1)"
         )
 
-    # --- duplicates and conflicts --------------------------------------------------------
+    # --- messages ----------------------------------------------------------------------
 
-    def _compare(self, a: str, b: str, stored: bool) -> str:
-        """SQL: record a's parsed content equals b's (b a stored row when ``stored``)."""
-        parts = []
-        for c in self.columns:
-            if c.role == "id":
-                continue
-            left = f"{a}.p_{c.alias}"
-            right = f"{b}.{self._stored_column(c)}" if stored else f"{b}.p_{c.alias}"
-            parts.append(f"{left} IS NOT DISTINCT FROM {right}")
-        return " AND ".join(parts)
-
-    def _stored_column(self, c: FileColumn) -> str:
-        return {
-            "time": "decided_at" if self.kind == "decisions" else "observed_at",
-            "maker": "decision_maker",
-            "team": "team",
-            "value": "judgment" if self.kind == "decisions" else "criterion",
-        }.get(c.role) or qi(c.cue)
-
-    def classify_duplicates_sql(self) -> str:
-        """Statements that mark duplicates and conflicting duplicates in _checked."""
-        idc = f"p_{self.col('id').alias}"
-        conflict_msg = "'id ' || c.{id} || ' is already stored with different content; the stored record is kept'"
-        if self.kind == "decisions":
-            stored = (
-                f"UPDATE _checked AS c SET is_duplicate = ({self._compare('c', 'd', True)}), "
-                f"reason = CASE WHEN ({self._compare('c', 'd', True)}) THEN NULL ELSE 'conflicting_duplicate' END, "
-                f"message = CASE WHEN ({self._compare('c', 'd', True)}) THEN NULL ELSE {conflict_msg.format(id=idc)} END "
-                f"FROM decisions d WHERE d.decision_id = c.{idc} AND c.reason IS NULL AND NOT c.is_blank"
-            )
-        else:
-            tcol = f"p_{self.col('time').alias}"
-            # An outcome identical to one already in the history is a re-delivery; a
-            # different one for the same decision is a correction and is appended.
-            stored = (
-                f"UPDATE _checked AS c SET is_duplicate = true FROM outcomes o "
-                f"WHERE o.decision_id = c.{idc} AND o.observed_at = c.{tcol} "
-                f"AND o.criterion IS NOT DISTINCT FROM c.p_{self.col('value').alias} "
-                f"AND c.reason IS NULL AND NOT c.is_blank;\n"
-                f"UPDATE _checked AS c SET reason = 'outcome_before_decision', "
-                f"message = 'outcome observed at ' || CAST(c.{tcol} AS VARCHAR) || ' is before its decision at ' "
-                f"|| CAST(d.decided_at AS VARCHAR) FROM decisions d "
-                f"WHERE d.decision_id = c.{idc} AND c.{tcol} < d.decided_at AND c.reason IS NULL "
-                f"AND NOT c.is_duplicate AND NOT c.is_blank"
-            )
-        same = self._compare("c", "f", False)
-        in_file_conflict = f"'id ' || c.{idc} || ' appears earlier in this file (line ' || f.source_line || ') with different content'"
-        within = (
-            f"UPDATE _checked AS c SET is_duplicate = ({same}), "
-            f"reason = CASE WHEN ({same}) THEN NULL ELSE "
-            f"{'NULL' if self.kind == 'outcomes' else repr('conflicting_duplicate')} END, "
-            f"message = CASE WHEN ({same}) THEN NULL ELSE "
-            f"{'NULL' if self.kind == 'outcomes' else in_file_conflict} END "
-            f"FROM (SELECT {idc} AS k, min(ord) AS first_ord FROM _checked "
-            f"      WHERE reason IS NULL AND NOT is_duplicate AND NOT is_blank "
-            f"      GROUP BY {idc} HAVING count(*) > 1) AS m, _checked AS f "
-            f"WHERE c.{idc} = m.k AND f.ord = m.first_ord AND c.ord > m.first_ord "
-            f"AND c.reason IS NULL AND NOT c.is_duplicate AND NOT c.is_blank"
-        )
-        if self.kind == "outcomes":
-            # Several rows for one decision in one file: identical ones are duplicates,
-            # different ones are successive corrections (all appended, in file order).
-            within = (
-                f"UPDATE _checked AS c SET is_duplicate = true FROM _checked AS f "
-                f"WHERE c.{idc} = f.{idc} AND f.ord < c.ord AND ({same}) "
-                f"AND c.reason IS NULL AND f.reason IS NULL AND NOT f.is_blank AND NOT c.is_blank"
-            )
-        return stored + ";\n" + within
-
-    # --- writing ---------------------------------------------------------------------
-
-    def insert_sql(self, batch_id: int, ingested_at: datetime) -> str:
-        # No ORDER BY: a filtered scan keeps _checked's (file) order while DuckDB's
-        # preserve_insertion_order is on (the default), and a sort of every accepted
-        # row was a large share of the ingest time.
-        ok = "reason IS NULL AND NOT is_duplicate AND NOT is_blank"
-        ts = f"p_{self.col('time').alias}"
-        if self.kind == "decisions":
-            cue_cols = [c for c in self.columns if c.role == "cue"]
-            team = self._team_expr()
-            names = ", ".join(qi(c.cue) for c in cue_cols)
-            vals = ", ".join(f"p_{c.alias}" for c in cue_cols)
-            return (
-                f"INSERT INTO decisions (decision_id, decided_at, decided_day, decision_maker, team, "
-                f"judgment, batch_id, ingested_at, source_line, {names}) "
-                f"SELECT p_{self.col('id').alias}, {ts}, CAST({ts} AS DATE), "
-                f"p_{self.col('maker').alias}, {team}, p_{self.col('value').alias}, {batch_id}, "
-                f"{lit(ingested_at.isoformat())}::TIMESTAMPTZ, source_line, {vals} "
-                f"FROM _checked WHERE {ok}"
-            )
-        return (
-            f"INSERT INTO outcomes (decision_id, observed_at, criterion, batch_id, ingested_at, source_line) "
-            f"SELECT p_{self.col('id').alias}, {ts}, p_{self.col('value').alias}, {batch_id}, "
-            f"{lit(ingested_at.isoformat())}::TIMESTAMPTZ, source_line FROM _checked WHERE {ok}"
-        )
-
-    def _team_expr(self) -> str:
-        team = [c for c in self.columns if c.role == "team"]
-        return f"p_{team[0].alias}" if team else "NULL"
-
-    def _message_expr(self) -> str:
+    def message_expr(self) -> str:
         """The one-line message of a quarantined record, from its reason and values.
-        Built here rather than for every record: most records need none."""
+        Used only when quarantining (ingest_writes.quarantine_sql): most records need none."""
         _, checks = self._parse_and_checks(None, self.config.ingest.earliest)
         counts: dict[str, int] = {}
         for _, r, _ in checks:
@@ -397,28 +287,6 @@ class Checks:
             for w, r, m in checks
         )
         return f"coalesce(message, CASE {whens} END, reason)"
-
-    def quarantine_sql(self, batch_id: int, ingested_at: datetime, fmt: str) -> str:
-        return (
-            f"INSERT INTO quarantine SELECT {batch_id}, {lit(self.kind)}, source_line, "
-            f"p_{self.col('id').alias}, reason, {self._message_expr()}, {self._raw_json_expr(fmt)}, "
-            f"{lit(ingested_at.isoformat())}::TIMESTAMPTZ "
-            f"FROM _checked WHERE reason IS NOT NULL AND NOT is_blank ORDER BY ord"
-        )
-
-    def mark_dirty_sql(self, marked_at: datetime) -> str:
-        ok = "c.reason IS NULL AND NOT c.is_duplicate AND NOT c.is_blank"
-        stamp = f"{lit(marked_at.isoformat())}::TIMESTAMPTZ"
-        if self.kind == "decisions":
-            ts = f"c.p_{self.col('time').alias}"
-            return (
-                f"INSERT INTO dirty_buckets SELECT DISTINCT c.p_{self.col('maker').alias}, "
-                f"CAST({ts} AS DATE), {stamp} FROM _checked c WHERE {ok}"
-            )
-        return (
-            f"INSERT INTO dirty_buckets SELECT DISTINCT d.decision_maker, d.decided_day, {stamp} "
-            f"FROM _checked c JOIN decisions d ON d.decision_id = c.p_{self.col('id').alias} WHERE {ok}"
-        )
 
 
 def build_checks(config: Config, kind: str) -> Checks:

@@ -13,11 +13,11 @@ from collections import Counter
 from datetime import date
 from pathlib import Path
 
-import duckdb
 import numpy as np
 import pandas as pd
 import pytest
 import statsmodels.api as sm
+from store_rows import design_frame, read_store
 from streamlit.testing.v1 import AppTest
 
 from monitor import dashboard_data as dd
@@ -105,14 +105,6 @@ def truth(demo_config) -> dict:
     return json.loads((demo_config.parent / "gen" / "truth.json").read_text())
 
 
-def sql(cfg: Path, query: str, params: list | None = None) -> pd.DataFrame:
-    con = duckdb.connect(str(load_config(cfg).store.path), read_only=True)
-    try:
-        return con.execute(query, params or []).df()
-    finally:
-        con.close()
-
-
 def app(cfg: Path, monkeypatch, page: str | None = None) -> AppTest:
     monkeypatch.setenv("CUEWATCH_CONFIG", str(cfg))
     at = AppTest.from_file(str(APP), default_timeout=60)
@@ -143,7 +135,7 @@ def test_overview_names_the_planted_handlers_without_a_click(demo_config, truth,
         assert f"**{planted(truth, kind)}**" in text, kind
     flagged = {line.split("**")[1] for line in text.splitlines() if line.startswith("- **")}
     # Source: the store's alerts table, read with plain SQL.
-    expect = sql(
+    expect = read_store(
         demo_config,
         "SELECT DISTINCT decision_maker FROM alerts WHERE scope = 'decision_maker' "
         "AND state IN ('open', 'acknowledged')",
@@ -155,7 +147,7 @@ def test_overview_figures_equal_the_stored_latest_windows(demo_config, monkeypat
     at = app(demo_config, monkeypatch)
     shown = at.dataframe[0].value
     # Source: the store's own fits table, read with plain SQL.
-    stored = sql(
+    stored = read_store(
         demo_config,
         "SELECT scope, decision_maker, n_decisions, n_linked, R_s, r_a FROM fits "
         "QUALIFY window_end = max(window_end) OVER (PARTITION BY scope, decision_maker)",
@@ -187,7 +179,7 @@ def test_period_picks_the_latest_window_inside_it_and_trends_over_it(demo_config
     period = (date(2025, 1, 1), date(2025, 3, 31))
     view = dd.overview(cfg, period)
     # Source: the fits table, counted with plain SQL.
-    expect = sql(
+    expect = read_store(
         demo_config,
         "SELECT decision_maker, max(window_end) AS last, "
         "count(*) FILTER (WHERE isfinite(R_s)) AS windows FROM fits "
@@ -207,7 +199,7 @@ def test_person_page_shows_the_stored_figures_and_charts(demo_config, truth, mon
     who = planted(truth, "forbidden_cue_direct")
     at.selectbox(key="who").select(who).run()
     assert not at.exception
-    latest = sql(
+    latest = read_store(
         demo_config,
         "SELECT n_decisions, n_linked, R_s, r_a FROM fits WHERE scope = 'decision_maker' "
         "AND decision_maker = ? ORDER BY window_end DESC LIMIT 1",
@@ -225,32 +217,19 @@ def test_person_page_shows_the_stored_figures_and_charts(demo_config, truth, mon
     assert any("forbidden cue is a statistical association" in w.value for w in at.warning)
 
 
-def _design(rows: pd.DataFrame, cfg) -> pd.DataFrame:
-    """Dummy-code the stored cue columns the way DESIGN.md describes (reference dropped)."""
-    out = pd.DataFrame(index=rows.index)
-    for name, cue in cfg.cues.items():
-        if cue.type == "categorical":
-            for level in cue.levels:
-                if level != cue.reference:
-                    out[f"{name}={level}"] = (rows[name] == level).astype(float)
-        else:
-            out[name] = rows[name].astype(float)
-    return out
-
-
 def test_weight_intervals_match_statsmodels_on_the_windows_raw_rows(demo_config, truth):
     cfg = load_config(demo_config)
     who = planted(truth, "forbidden_cue_direct")
     hist = dd.person_history(cfg, who)
     end = hist.latest["window_end"].iloc[0]
     start = end - pd.Timedelta(days=cfg.windows.length_days - 1)
-    rows = sql(
+    rows = read_store(
         demo_config,
         "SELECT * FROM decisions WHERE decision_maker = ? AND decided_day BETWEEN ? AND ?",
         [who, start.date(), end.date()],
     )
     assert len(rows) == hist.latest["n_decisions"].iloc[0]
-    x = _design(rows, cfg)
+    x = design_frame(cfg, rows)
     # Source: statsmodels OLS with t intervals, standardised by sd(x)/sd(y).
     fit = sm.OLS(rows["judgment"], sm.add_constant(x)).fit()
     scale = x.std(ddof=1) / rows["judgment"].std(ddof=1)
@@ -267,7 +246,7 @@ def test_team_median_is_the_median_over_the_teams_decision_makers(demo_config, t
     hist = dd.person_history(cfg, who)
     team = next(h["team"] for h in truth["handlers"] if h["handler_id"] == who)
     members = [h["handler_id"] for h in truth["handlers"] if h["team"] == team]
-    raw = sql(
+    raw = read_store(
         demo_config,
         "SELECT decision_maker, window_end, cue, std_weight FROM cue_weights "
         "WHERE scope = 'decision_maker'",
@@ -306,7 +285,7 @@ def test_disparity_is_the_difference_in_means_on_raw_rows(demo_config, truth):
         .rows.query("decision_maker == @who and cue == 'claimant_gender'")
         .iloc[0]
     )
-    raw = sql(
+    raw = read_store(
         demo_config,
         "SELECT judgment, claimant_gender FROM decisions WHERE decision_maker = ? "
         "AND decided_day BETWEEN ? AND ?",
@@ -328,19 +307,23 @@ def test_alerts_page_shows_evidence_and_acknowledges_with_a_note(
 ):
     cfg = copy_store(demo_config, tmp_path)
     at = app(cfg, monkeypatch, "page_alerts.py")
-    open_ids = sql(cfg, "SELECT alert_id FROM alerts WHERE state = 'open' ORDER BY 1")["alert_id"]
+    open_alerts = read_store(cfg, "SELECT alert_id FROM alerts WHERE state = 'open' ORDER BY 1")
+    open_ids = open_alerts["alert_id"]
     assert len(open_ids) > 0
     metrics = {m.label: m.value for m in at.metric}
     assert metrics["Open"] == str(len(open_ids))
     target = int(open_ids.iloc[0])
-    n = sql(cfg, "SELECT evidence FROM alerts WHERE alert_id = ?", [target])["evidence"].item()
+    evidence = read_store(cfg, "SELECT evidence FROM alerts WHERE alert_id = ?", [target])
+    n = evidence["evidence"].item()
     assert f"n = {json.loads(n)['n']}" in markdown_text(at)
     at.text_input(key=f"by-{target}").input("R. Okafor")
     at.text_area(key=f"note-{target}").input("Reviewed with the team lead.")
     at.button(key=f"ack-btn-{target}").click().run()
     assert not at.exception
     assert any(f"Alert {target} acknowledged" in s.value for s in at.success)
-    row = sql(cfg, "SELECT state, acknowledged_by, note FROM alerts WHERE alert_id = ?", [target])
+    row = read_store(
+        cfg, "SELECT state, acknowledged_by, note FROM alerts WHERE alert_id = ?", [target]
+    )
     assert row.iloc[0].tolist() == ["acknowledged", "R. Okafor", "Reviewed with the team lead."]
 
 
@@ -348,7 +331,7 @@ def test_acknowledging_while_the_writer_holds_the_store_says_busy(demo_config, t
     cfg_path = copy_store(demo_config, tmp_path)
     cfg = load_config(cfg_path)
     target = int(
-        sql(cfg_path, "SELECT min(alert_id) AS a FROM alerts WHERE state = 'open'")["a"][0]
+        read_store(cfg_path, "SELECT min(alert_id) AS a FROM alerts WHERE state = 'open'")["a"][0]
     )
     from monitor.store import Store
 
@@ -356,7 +339,8 @@ def test_acknowledging_while_the_writer_holds_the_store_says_busy(demo_config, t
         result = dd.acknowledge_alert(cfg, target, "R. Okafor", "busy?")
     assert not result.ok and result.message == dd.BUSY_MESSAGE
     assert (
-        sql(cfg_path, "SELECT state FROM alerts WHERE alert_id = ?", [target])["state"][0] == "open"
+        read_store(cfg_path, "SELECT state FROM alerts WHERE alert_id = ?", [target])["state"][0]
+        == "open"
     )
 
 
@@ -372,7 +356,7 @@ def test_data_health_counts_the_planted_bad_rows_and_the_nightly_run(
     expect = Counter(REASON_OF_KIND[b["kind"]] for b in landed)
     assert dict(zip(health.quarantine["reason"], health.quarantine["rows"], strict=True)) == expect
     assert set(health.quarantine_sample["reason"]) == set(expect)
-    run = sql(
+    run = read_store(
         demo_config, "SELECT finished_at FROM runs WHERE command = 'nightly' AND status = 'ok'"
     )
     metrics = {m.label: m.value for m in at.metric}
@@ -380,7 +364,9 @@ def test_data_health_counts_the_planted_bad_rows_and_the_nightly_run(
     assert metrics["Rows quarantined"] == f"{sum(expect.values()):,}"
     cov = health.coverage
     # Source: the store's decisions_with_outcome view, counted with plain SQL.
-    linked = sql(demo_config, "SELECT count(criterion) AS n FROM decisions_with_outcome")["n"][0]
+    linked = read_store(demo_config, "SELECT count(criterion) AS n FROM decisions_with_outcome")[
+        "n"
+    ][0]
     assert cov["linked"].sum() == linked and (cov["share_linked"] <= 1).all()
 
 

@@ -16,6 +16,7 @@ import pandas as pd
 import pytest
 import statsmodels.api as sm
 from conftest import run_cli, text, write_config
+from store_rows import design_frame
 from test_lens import LONGLEY_CERTIFIED_COEF, LONGLEY_CERTIFIED_SE
 
 from monitor.config import Config, load_config
@@ -229,20 +230,6 @@ def demo(tmp_path_factory) -> Config:
     return load_config(build_demo_store(tmp_path_factory.mktemp("demo")))
 
 
-def _design(config: Config, rows: pd.DataFrame) -> pd.DataFrame:
-    """Design columns built here from the raw cue values, independently of the store's
-    SQL: numeric and binary cues as they are, one 0/1 dummy per non-reference level."""
-    out = pd.DataFrame(index=rows.index)
-    for name, cue in config.cues.items():
-        if cue.type == "categorical":
-            for level in cue.levels:
-                if level != cue.reference:
-                    out[f"{name}={level}"] = (rows[name] == level).astype(float)
-        else:
-            out[name] = rows[name].astype(float)
-    return out
-
-
 def _window_rows(config: Config, fit: pd.Series) -> pd.DataFrame:
     """The window's raw rows, fetched with plain SQL from the analysts' view."""
     who = {"decision_maker": "decision_maker = ?", "team": "team = ?", "all": "? = 'all'"}
@@ -284,7 +271,7 @@ def test_random_stored_windows_match_statsmodels(demo):
                     & (cues["window_end"] == fit["window_end"])]  # fmt: skip
         rows = _window_rows(demo, fit)
         assert len(rows) == fit["n_decisions"]
-        x = _design(demo, rows)
+        x = design_frame(demo, rows)
         assert list(x.columns) == list(mine["cue"])
         # Reference: statsmodels OLS on the raw rows (judge model: every row).
         ref = sm.OLS(rows["judgment"].to_numpy(), sm.add_constant(x.to_numpy())).fit()

@@ -9,13 +9,13 @@ from __future__ import annotations
 from datetime import timedelta
 from pathlib import Path
 
-import duckdb
 import numpy as np
 import pandas as pd
 import pytest
 import statsmodels.api as sm
 from demo_store import build_demo_store
 from statsmodels.stats.multitest import multipletests
+from store_rows import design_frame, read_store
 
 from monitor.config import load_config
 from synthetic_logs.ostwyn import load_truth
@@ -27,32 +27,9 @@ def demo_config(tmp_path_factory) -> Path:
     return build_demo_store(tmp_path_factory.getbasetemp() / "demo_seed7")
 
 
-def _read(config_path: Path, sql: str, params: list | None = None) -> pd.DataFrame:
-    con = duckdb.connect(str(load_config(config_path).store.path), read_only=True)
-    try:
-        return con.execute(sql, params or []).df()
-    finally:
-        con.close()
-
-
-def _design(config, rows: pd.DataFrame) -> pd.DataFrame:
-    """The judge model's design columns built here from raw cue values (dummies against
-    the declared reference level), independently of monitor.lens."""
-    out = {}
-    for name, cue in config.cues.items():
-        if cue.type == "categorical":
-            for level in cue.levels:
-                if level != cue.reference:
-                    out[f"{name}={level}"] = (rows[name] == level).astype(float)
-        else:
-            out[name] = rows[name].astype(float)
-    x = pd.DataFrame(out)
-    return x[list(config.design_columns())]
-
-
 def _window_rows(config_path, config, handler, start, end) -> pd.DataFrame:
     cues = ", ".join(f'"{c}"' for c in config.cues)
-    return _read(
+    return read_store(
         config_path,
         f"SELECT judgment, {cues} FROM decisions WHERE decision_maker = ? "
         "AND decided_day BETWEEN ? AND ? ORDER BY decision_id",
@@ -64,7 +41,7 @@ def test_forbidden_rows_match_statsmodels_on_the_raw_rows_of_one_window(demo_con
     config = load_config(demo_config)
     truth = load_truth(demo_config.parent / "scenario")
     planted = next(c for c in truth.changes if c.kind == "forbidden_cue_direct")
-    stored = _read(
+    stored = read_store(
         demo_config, "SELECT * FROM policy_findings WHERE check_kind = 'forbidden_direct'"
     )
     # The first window that lies wholly after the planted change.
@@ -76,7 +53,7 @@ def test_forbidden_rows_match_statsmodels_on_the_raw_rows_of_one_window(demo_con
         start = rows_h["window_start"].iloc[0].date()
         raw = _window_rows(demo_config, config, handler, start, end)
         assert len(raw) == rows_h["n"].iloc[0]
-        x = _design(config, raw)
+        x = design_frame(config, raw)
         y = raw["judgment"].to_numpy(float)
         full = sm.OLS(y, sm.add_constant(x)).fit()
         for cue in config.policy.forbidden:
@@ -117,7 +94,7 @@ def test_forbidden_rows_match_statsmodels_on_the_raw_rows_of_one_window(demo_con
 
 
 def test_disparity_is_direct_plus_indirect_on_every_stored_row(demo_config):
-    f = _read(
+    f = read_store(
         demo_config,
         "SELECT disparity, direct, indirect FROM policy_findings "
         "WHERE check_kind IN ('forbidden_direct', 'forbidden_proxy') AND disparity IS NOT NULL",
@@ -125,7 +102,7 @@ def test_disparity_is_direct_plus_indirect_on_every_stored_row(demo_config):
     assert len(f) > 1000
     # The omitted-variable identity, exact for OLS (DESIGN.md, "Forbidden cues").
     np.testing.assert_allclose(f["disparity"], f["direct"] + f["indirect"], rtol=0, atol=1e-10)
-    parts = _read(
+    parts = read_store(
         demo_config,
         "SELECT f.indirect, sum(p.part) AS parts FROM policy_proxy_parts p JOIN policy_findings f "
         "ON f.check_kind = 'forbidden_proxy' AND f.decision_maker = p.decision_maker "
@@ -144,7 +121,7 @@ SEEDS = (1, 2, 3, 4)
 
 def _direct_flags(config_path: Path) -> pd.DataFrame:
     """One row per (window end, handler, forbidden cue) with flagged."""
-    f = _read(
+    f = read_store(
         config_path,
         "SELECT window_end, decision_maker, cue, bool_or(flagged) AS flagged "
         "FROM policy_findings WHERE check_kind = 'forbidden_direct' AND assessable "
@@ -195,7 +172,7 @@ def test_false_alarms_over_stable_handlers_stay_within_the_fdr_level(tmp_path_fa
         by_series = series.groupby(["decision_maker", "cue"])["flagged"].any()
         null_series += len(by_series)
         null_series_flagged += int(by_series.sum())
-        alerts = _read(cfg_path, "SELECT kind, decision_maker, cue FROM alerts")
+        alerts = read_store(cfg_path, "SELECT kind, decision_maker, cue FROM alerts")
         planted_proxy = {(h, c.forbidden_cue) for c in proxy for h in c.handler_ids}
         for a in alerts.itertuples():
             if a.kind == "forbidden_cue" and (a.decision_maker, a.cue) not in planted_direct:
