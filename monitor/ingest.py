@@ -231,33 +231,31 @@ def _stage(
     present = present_columns(con, config, path, fmt)
     checks.require_columns(present, label)
 
-    # 1. Stage the needed columns as text, in file order (rowid = record ordinal).
-    con.execute(
-        f"CREATE TEMP TABLE _raw AS {reader_sql(config, path, fmt, checks.columns, present)}"
-    )
-    rejected_lines = _stage_csv_rejects(con) if fmt == "csv" else 0
-
-    # 2. Parse and check every record in one set-based pass.
+    # 1. Read, parse and check every record in one set-based pass, in file order
+    #    (the staged table's rowid is the record's ordinal).
     tz = checks.timezone
     if tz != config.decisions.timezone:
         con.execute(f"SET TimeZone = {sql_literal(tz)}")
     try:
         horizon = now + timedelta(hours=config.ingest.future_tolerance_hours)
+        reader = reader_sql(config, path, fmt, checks.columns, present)
+        if fmt == "jsonl":
+            # Materialise the JSON Lines split first: inlined, the optimiser may run a
+            # JSON function on a line that is not JSON before the CASE guards it.
+            con.execute(f"CREATE TEMP TABLE _raw AS {reader}")
+            reader = "SELECT * FROM _raw"
         con.execute(
             "CREATE TEMP TABLE _checked AS "
-            + checks.checked_sql(
-                horizon=horizon,
-                earliest=config.ingest.earliest,
-                fmt=fmt,
-                csv_rejects=rejected_lines > 0,
-            )
+            + checks.checked_sql(reader, horizon=horizon, earliest=config.ingest.earliest)
         )
-        con.execute("DROP TABLE _raw")  # no longer needed: free its memory now
     finally:
         if tz != config.decisions.timezone:
             con.execute(f"SET TimeZone = {sql_literal(config.decisions.timezone)}")
+    con.execute("DROP TABLE IF EXISTS _raw")
+    rejected_lines = _stage_csv_rejects(con) if fmt == "csv" else 0
+    checks.set_line_numbers(fmt, rejected_lines > 0)
 
-    # 3. Duplicates: identical to what is stored (or earlier in the file) -> counted;
+    # 2. Duplicates: identical to what is stored (or earlier in the file) -> counted;
     #    a stored decision with different content -> quarantined, never overwritten.
     con.execute(classify_duplicates_sql(checks))
     return rejected_lines

@@ -179,25 +179,19 @@ class Checks:
             )
         return out
 
-    def checked_sql(
-        self, *, horizon: datetime, earliest: str, fmt: str, csv_rejects: bool = True
-    ) -> str:
-        """SELECT over _raw giving parsed columns and a reason code per record.
-
-        ``csv_rejects``: whether the CSV reader rejected any line (when it did not, a
-        record's line number is simply its ordinal + 2).  The raw record is kept as
-        text columns (and raw_line for JSON Lines); its JSON form and the message are
+    def checked_sql(self, reader: str, *, horizon: datetime, earliest: str) -> str:
+        """SELECT over the file reader ``reader`` giving the raw text columns, parsed
+        columns and a reason code per record, in file order (so the staged table's
+        rowid is the record's ordinal).  The raw record's JSON form and the message are
         built only for quarantined records, in ``ingest_writes.quarantine_sql``
         (message is NULL here unless a later step sets it)."""
         parsed, checks = self._parse_and_checks(horizon, earliest)
         reason = "CASE " + " ".join(f"WHEN {w} THEN '{r}'" for w, r, _ in checks) + " END"
-        line = self._line_expr(fmt, csv_rejects)
-        # Not a MATERIALIZED CTE: with the messages moved to quarantine_sql it saved
-        # no CPU and cost a full extra copy of the file (spilled to disk when large).
+        aliases = ", ".join(c.alias for c in self.columns)
         return (
-            f"WITH parsed AS (SELECT rowid AS ord, *, {', '.join(parsed)} FROM _raw) "
-            f"SELECT ord, {line} AS source_line, is_blank, raw_line, "
-            f"{', '.join(c.alias for c in self.columns)}, parsed.* EXCLUDE (ord, is_blank, is_malformed, raw_line, {', '.join(c.alias for c in self.columns)}), "
+            f"WITH parsed AS (SELECT *, {', '.join(parsed)} FROM ({reader})) "
+            f"SELECT is_blank, raw_line, {aliases}, "
+            f"parsed.* EXCLUDE (is_blank, is_malformed, raw_line, {aliases}), "
             f"{reason} AS reason, NULL::VARCHAR AS message, false AS is_duplicate "
             f"FROM parsed"
         )
@@ -258,17 +252,23 @@ class Checks:
         o = self.config.outcomes
         return o.criterion_values, o.criterion_range, "criterion"
 
-    def _line_expr(self, fmt: str, csv_rejects: bool = True) -> str:
-        if fmt == "jsonl":
-            return "ord + 1"
-        if fmt == "parquet":
-            return "ord + 1"
-        if not csv_rejects:  # the common case; the subquery below costs a join per file
-            return "ord + 2"
+    def set_line_numbers(self, fmt: str, csv_rejects: bool) -> None:
+        """Fix how a staged record's line number follows from its ordinal (rowid)."""
+        self.line_format = fmt
+        self.line_rejects = csv_rejects
+
+    def line_expr(self, ordinal: str) -> str:
+        """SQL for the source line of the staged record whose 0-based ordinal is
+        ``ordinal`` (e.g. ``c.rowid``)."""
+        fmt = getattr(self, "line_format", "csv")
+        if fmt in ("jsonl", "parquet"):
+            return f"({ordinal} + 1)"
+        if not getattr(self, "line_rejects", True):  # the common case: no join per file
+            return f"({ordinal} + 2)"
         # CSV: the header is line 1; lines the reader rejected shift later records.
         return (
-            "ord + 2 + (SELECT count(*) FROM (SELECT line - row_number() OVER (ORDER BY line) AS t "
-            "FROM (SELECT DISTINCT line FROM _rejects)) WHERE t <= ord + 1)"
+            f"({ordinal} + 2 + (SELECT count(*) FROM (SELECT line - row_number() OVER (ORDER BY line) AS t "
+            f"FROM (SELECT DISTINCT line FROM _rejects)) WHERE t <= {ordinal} + 1))"
         )
 
     # --- messages ----------------------------------------------------------------------
@@ -319,6 +319,11 @@ def build_checks(config: Config, kind: str) -> Checks:
     return Checks(config, kind, cols, tz)
 
 
+# JSON Lines are read one line a record with DuckDB's CSV reader and a delimiter that
+# never occurs in text (four control characters in a row), so no line is ever split.
+_LINE_DELIM = "\x1f\x1e\x1d\x1c"
+
+
 def reader_sql(
     config: Config, path: Path, fmt: str, columns: list[FileColumn], present: list[str]
 ) -> str:
@@ -337,7 +342,7 @@ def reader_sql(
             f"    SELECT line AS raw_line, (line IS NULL OR trim(line, ' \t\r\n\f\v') = '') AS is_blank,"
             f"      coalesce(CASE WHEN json_valid(line) THEN json_type(line) = 'OBJECT' END, false)"
             f"        AS is_object"
-            f"    FROM read_csv({p}, columns = {{'line': 'VARCHAR'}}, header = false, delim = '\x1f',"
+            f"    FROM read_csv({p}, columns = {{'line': 'VARCHAR'}}, header = false, delim = '{_LINE_DELIM}',"
             f"      quote = '', escape = '', auto_detect = false)))"
         )
     sel = []

@@ -79,19 +79,19 @@ def classify_duplicates_sql(checks: Checks) -> str:
         # different ones are successive corrections (all appended, in file order).
         within = (
             f"UPDATE _checked AS c SET is_duplicate = true FROM _checked AS f "
-            f"WHERE c.{idc} = f.{idc} AND f.ord < c.ord AND ({same}) "
+            f"WHERE c.{idc} = f.{idc} AND f.rowid < c.rowid AND ({same}) "
             f"AND c.reason IS NULL AND f.reason IS NULL AND NOT f.is_blank AND NOT c.is_blank"
         )
     else:
-        in_file_conflict = f"'id ' || c.{idc} || ' appears earlier in this file (line ' || f.source_line || ') with different content'"
+        in_file_conflict = f"'id ' || c.{idc} || ' appears earlier in this file (line ' || {checks.line_expr('f.rowid')} || ') with different content'"
         within = (
             f"UPDATE _checked AS c SET is_duplicate = ({same}), "
             f"reason = CASE WHEN ({same}) THEN NULL ELSE 'conflicting_duplicate' END, "
             f"message = CASE WHEN ({same}) THEN NULL ELSE {in_file_conflict} END "
-            f"FROM (SELECT {idc} AS k, min(ord) AS first_ord FROM _checked "
+            f"FROM (SELECT {idc} AS k, min(rowid) AS first_ord FROM _checked "
             f"      WHERE reason IS NULL AND NOT is_duplicate AND NOT is_blank "
             f"      GROUP BY {idc} HAVING count(*) > 1) AS m, _checked AS f "
-            f"WHERE c.{idc} = m.k AND f.ord = m.first_ord AND c.ord > m.first_ord "
+            f"WHERE c.{idc} = m.k AND f.rowid = m.first_ord AND c.rowid > m.first_ord "
             f"AND c.reason IS NULL AND NOT c.is_duplicate AND NOT c.is_blank"
         )
     return stored + ";\n" + within
@@ -117,13 +117,14 @@ def insert_sql(checks: Checks, batch_id: int, ingested_at: datetime) -> str:
             f"SELECT p_{checks.col('id').alias}, {ts}, CAST({ts} AS DATE), "
             f"p_{checks.col('maker').alias}, {_team_expr(checks)}, "
             f"p_{checks.col('value').alias}, {batch_id}, "
-            f"{lit(ingested_at.isoformat())}::TIMESTAMPTZ, source_line, {vals} "
+            f"{lit(ingested_at.isoformat())}::TIMESTAMPTZ, {checks.line_expr('rowid')}, {vals} "
             f"FROM _checked WHERE {ok}"
         )
     return (
         f"INSERT INTO outcomes (decision_id, observed_at, criterion, batch_id, ingested_at, source_line) "
         f"SELECT p_{checks.col('id').alias}, {ts}, p_{checks.col('value').alias}, {batch_id}, "
-        f"{lit(ingested_at.isoformat())}::TIMESTAMPTZ, source_line FROM _checked WHERE {ok}"
+        f"{lit(ingested_at.isoformat())}::TIMESTAMPTZ, {checks.line_expr('rowid')} "
+        f"FROM _checked WHERE {ok}"
     )
 
 
@@ -147,10 +148,10 @@ def _raw_json_expr(checks: Checks, fmt: str) -> str:
 def quarantine_sql(checks: Checks, batch_id: int, ingested_at: datetime, fmt: str) -> str:
     """INSERT moving the rejected records of _checked to quarantine, in file order."""
     return (
-        f"INSERT INTO quarantine SELECT {batch_id}, {lit(checks.kind)}, source_line, "
+        f"INSERT INTO quarantine SELECT {batch_id}, {lit(checks.kind)}, {checks.line_expr('rowid')}, "
         f"p_{checks.col('id').alias}, reason, {checks.message_expr()}, "
         f"{_raw_json_expr(checks, fmt)}, {lit(ingested_at.isoformat())}::TIMESTAMPTZ "
-        f"FROM _checked WHERE reason IS NOT NULL AND NOT is_blank ORDER BY ord"
+        f"FROM _checked WHERE reason IS NOT NULL AND NOT is_blank ORDER BY rowid"
     )
 
 
