@@ -170,6 +170,19 @@ def add_nightly(cfg_path: Path, rows_total: int, days: int, makers: int, share: 
     return {"new_rows": per_day, "late_outcomes": late, "dirty_buckets": int(dirty)}
 
 
+def _peak_rss_kib() -> float:
+    """This process's own peak RSS.  ``ru_maxrss`` survives exec, so a child spawned by
+    a parent holding a big frame reported the parent's peak; the kernel's ``VmHWM``
+    belongs to the new address space (Linux; falls back to ``ru_maxrss`` elsewhere)."""
+    try:
+        for line in Path("/proc/self/status").read_text().splitlines():
+            if line.startswith("VmHWM:"):
+                return float(line.split()[1])
+    except OSError:
+        pass
+    return float(resource.getrusage(resource.RUSAGE_SELF).ru_maxrss)
+
+
 def _child_refit(cfg_path: str, full: bool, queue) -> None:
     from monitor.config import load_config
     from monitor.windows import refit
@@ -178,7 +191,7 @@ def _child_refit(cfg_path: str, full: bool, queue) -> None:
     t0, c0 = time.perf_counter(), time.process_time()
     summary = refit(config, full=full)
     seconds, cpu = time.perf_counter() - t0, time.process_time() - c0
-    peak_kib = resource.getrusage(resource.RUSAGE_SELF).ru_maxrss
+    peak_kib = _peak_rss_kib()
     # CPU seconds (all threads) beside wall time: the host may be shared.
     queue.put(
         {"seconds": seconds, "cpu_s": cpu, "peak_rss_mb": peak_kib / 1024, **summary.to_json()}

@@ -171,16 +171,48 @@ def _segmented_scan(bucket: Moments, seg_start: np.ndarray, reverse: bool) -> Mo
     return out
 
 
+def group_sums(bucket: Moments, group: np.ndarray, n_groups: int) -> Moments:
+    """Merged moments per group: result ``g`` merges every bucket with ``group == g``
+    (any order; a group without members gives n = 0).
+
+    The exact two-pass form of the pooled co-moment, vectorised over all groups:
+    mean = c + sum n_i (mean_i - c) / n with c one member's mean, then
+    M = sum M_i + sum n_i (mean_i - mean)(mean_i - mean)^T.  Only centred statistics
+    and differences of nearby means are added, so the digits do not depend on the size
+    of the means; an error e in the pooled mean enters M only as n e e^T because
+    sum n_i (mean_i - mean) = 0.  The sums are one sparse (groups x buckets) product,
+    in a fixed order, so no reordered copy of the stack is made.
+    Memory: one (B, p, p) temporary.
+    """
+    from scipy import sparse
+
+    group = np.asarray(group, dtype=np.int64)
+    size, p = bucket.size, bucket.width
+    if not size:
+        return empty_moments(n_groups, p)
+    member = sparse.csr_matrix((np.ones(size), (group, np.arange(size))), shape=(n_groups, size))
+    n = member @ bucket.n
+    safe = np.where(n > 0, n, 1.0)
+    first = np.zeros(n_groups, dtype=np.int64)
+    first[group[::-1]] = np.arange(size)[::-1]  # the first member of each group
+    anchor = bucket.mean[first]
+    weighted = (bucket.mean - anchor[group]) * bucket.n[:, None]
+    mean = np.where((n > 0)[:, None], anchor + (member @ weighted) / safe[:, None], 0.0)
+    d = bucket.mean - mean[group]
+    spread = d[:, :, None] * (d * bucket.n[:, None])[:, None, :]
+    spread += bucket.comoment
+    comoment = (member @ spread.reshape(size, p * p)).reshape(n_groups, p, p)
+    return Moments(n, mean, comoment)
+
+
 def segment_sums(bucket: Moments, seg_start: np.ndarray) -> Moments:
     """Merged moments of consecutive segments (``seg_start`` True at each segment's
-    first element); one result per segment, in order.  Sequential Chan merges: the
-    rounding error grows with the segment length, a few ulps of the centred co-moment
-    per element, never with the size of the means."""
+    first element); one result per segment, in order (``group_sums``)."""
     seg_start = np.asarray(seg_start, dtype=bool)
     if not bucket.size:
         return bucket
-    ends = np.append(np.flatnonzero(seg_start)[1:], bucket.size) - 1
-    return _segmented_scan(bucket, seg_start, reverse=False).take(ends)
+    seg = np.cumsum(seg_start) - 1
+    return group_sums(bucket, seg, int(seg[-1]) + 1)
 
 
 def fixed_window_sums(
