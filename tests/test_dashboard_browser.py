@@ -14,7 +14,8 @@ import urllib.request
 from pathlib import Path
 
 import pytest
-from test_dashboard import REPO, build_demo, copy_store, sql
+from store_rows import read_store as sql
+from test_dashboard import REPO, build_demo, copy_store
 
 CHROMIUM = Path("/usr/bin/chromium")
 ARTIFACTS = REPO / "test-artifacts"
