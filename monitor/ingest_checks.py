@@ -188,12 +188,20 @@ class Checks:
         parsed, checks = self._parse_and_checks(horizon, earliest)
         reason = "CASE " + " ".join(f"WHEN {w} THEN '{r}'" for w, r, _ in checks) + " END"
         aliases = ", ".join(c.alias for c in self.columns)
+        # The raw text is kept only for records that fail a check (they go to
+        # quarantine as they were read); an accepted record needs its parsed values
+        # only, which halves what the staging table holds.
+        kept = ", ".join(
+            f"CASE WHEN reason IS NULL THEN NULL ELSE {a} END AS {a}"
+            for a in ["raw_line", *(c.alias for c in self.columns)]
+        )
         return (
-            f"WITH parsed AS (SELECT *, {', '.join(parsed)} FROM ({reader})) "
-            f"SELECT is_blank, raw_line, {aliases}, "
-            f"parsed.* EXCLUDE (is_blank, is_malformed, raw_line, {aliases}), "
-            f"{reason} AS reason, NULL::VARCHAR AS message, false AS is_duplicate "
-            f"FROM parsed"
+            f"WITH parsed AS (SELECT *, {', '.join(parsed)} FROM ({reader})), "
+            f"checked AS (SELECT parsed.*, {reason} AS reason FROM parsed) "
+            f"SELECT is_blank, {kept}, "
+            f"checked.* EXCLUDE (is_blank, is_malformed, raw_line, reason, {aliases}), "
+            f"reason, NULL::VARCHAR AS message, false AS is_duplicate "
+            f"FROM checked"
         )
 
     def _parse_and_checks(

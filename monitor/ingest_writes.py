@@ -136,13 +136,19 @@ def _team_expr(checks: Checks) -> str:
 def _raw_json_expr(checks: Checks, fmt: str) -> str:
     # raw_row is always JSON text: the record itself, or (when it is not a JSON
     # object) the line as a JSON string, so json.loads gives back the exact text.
+    # A record found to conflict only after staging (a duplicate id with other
+    # content) kept no raw text: its parsed values stand in for it.
+    pairs = ", ".join(
+        f"{lit(c.source)}, coalesce({c.alias}, CAST(p_{c.alias} AS VARCHAR))"
+        for c in checks.columns
+    )
+    parsed_json = f"CAST(json_object({pairs}) AS VARCHAR)"
     if fmt == "jsonl":
         return (
             "CASE WHEN reason = 'malformed_record' THEN CAST(to_json(raw_line) AS VARCHAR) "
-            "ELSE raw_line END"
+            f"ELSE coalesce(raw_line, {parsed_json}) END"
         )
-    pairs = ", ".join(f"{lit(c.source)}, {c.alias}" for c in checks.columns)
-    return f"CAST(json_object({pairs}) AS VARCHAR)"
+    return parsed_json
 
 
 def quarantine_sql(checks: Checks, batch_id: int, ingested_at: datetime, fmt: str) -> str:
