@@ -7,6 +7,7 @@ No logic lives here that a test cannot reach through the stage modules.  User er
 from __future__ import annotations
 
 import functools
+import io
 import json
 import sys
 from pathlib import Path
@@ -268,7 +269,7 @@ def format_fits_table(rows: list[dict]) -> str:
             ", ".join(f"{c['cue']} {c['std_weight']:+.2f}" for c in cues),
             r.get("reason") or "",
         )
-    console = Console(width=200, record=True, file=open("/dev/null", "w"))
+    console = Console(width=200, record=True, file=io.StringIO())
     console.print(table)
     return console.export_text()
 

@@ -63,7 +63,7 @@ def read_fits(
         )
     order = "CASE f.scope WHEN 'decision_maker' THEN 0 WHEN 'team' THEN 1 ELSE 2 END, f.decision_maker, f.window_end"
     with store.reader() as con:
-        store.ensure_ready(con) if False else None
+        store.ensure_ready(con)  # an old or uninitialised store: one sentence, exit 2
         fits = con.execute(
             f"SELECT {', '.join('f.' + quote_ident(c) for c in FIT_FIELDS)}, f.reason FROM fits f "
             f"WHERE {' AND '.join(where)} ORDER BY {order}",
