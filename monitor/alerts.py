@@ -28,7 +28,7 @@ import pandas as pd
 from monitor.config import Config
 from monitor.findings import JOINT, evaluate
 from monitor.policy import episodes
-from monitor.store import Store, quote_ident, utc_now
+from monitor.store import Store, get_fact, quote_ident, set_fact, utc_now
 
 ALERT_KINDS = {
     "forbidden_direct": "forbidden_cue",
@@ -74,9 +74,9 @@ def assess(
     store = Store(config)
     with store.writer() as con:
         store.ensure_ready(con)
-        fits_stamp = _fact(con, "last_refit") or ""
+        fits_stamp = get_fact(con, "last_refit") or ""
         summary = AssessSummary(evaluated=False)
-        if force or _fact(con, "assessed_fits") != fits_stamp:
+        if force or get_fact(con, "assessed_fits") != fits_stamp:
             findings, proxies = evaluate(con, config)
             con.execute("BEGIN")
             try:
@@ -85,7 +85,7 @@ def assess(
                 summary.evaluated = True
                 summary.findings = len(findings)
                 summary.flagged_windows = int(findings["flagged"].fillna(False).astype(bool).sum())
-                _set_fact(con, "assessed_fits", fits_stamp)
+                set_fact(con, "assessed_fits", fits_stamp)
                 con.execute("COMMIT")
             except BaseException:
                 con.execute("ROLLBACK")
@@ -95,37 +95,21 @@ def assess(
     return summary
 
 
-def _fact(con, key: str) -> str | None:
-    rows = con.execute("SELECT value FROM store_facts WHERE key = ?", [key]).fetchall()
-    return rows[0][0] if rows else None
-
-
-def _set_fact(con, key: str, value: str) -> None:
-    con.execute("INSERT OR REPLACE INTO store_facts VALUES (?, ?, ?)", [key, value, utc_now()])
-
-
 def _write_findings(con, findings: pd.DataFrame, proxies: pd.DataFrame, now: datetime) -> None:
-    con.execute("DELETE FROM policy_findings")
-    con.execute("DELETE FROM policy_proxy_parts")
-    if len(findings):
+    """Replace the stored findings with this evaluation's."""
+    for table, frame in (("policy_findings", findings), ("policy_proxy_parts", proxies)):
+        con.execute(f"DELETE FROM {table}")
+        if not len(frame):
+            continue
         # DuckDB reads pandas NaN as NULL: "not estimable" stays missing in SQL.
-        f = findings.copy()
-        f.insert(0, "evaluated_at", now)
-        con.register("_findings", f)
+        rows = frame.copy()
+        rows.insert(0, "evaluated_at", now)
+        con.register("_rows", rows)
         try:
-            cols = ", ".join(quote_ident(c) for c in f.columns)
-            con.execute(f"INSERT INTO policy_findings ({cols}) SELECT {cols} FROM _findings")
+            cols = ", ".join(quote_ident(c) for c in rows.columns)
+            con.execute(f"INSERT INTO {table} ({cols}) SELECT {cols} FROM _rows")
         finally:
-            con.unregister("_findings")
-    if len(proxies):
-        p = proxies.copy()
-        p.insert(0, "evaluated_at", now)
-        con.register("_proxies", p)
-        try:
-            cols = ", ".join(quote_ident(c) for c in p.columns)
-            con.execute(f"INSERT INTO policy_proxy_parts ({cols}) SELECT {cols} FROM _proxies")
-        finally:
-            con.unregister("_proxies")
+            con.unregister("_rows")
 
 
 def _window_states(findings: pd.DataFrame) -> pd.DataFrame:

@@ -21,30 +21,25 @@ EXIT_USER_ERROR = 2
 
 
 def user_errors() -> tuple[type[Exception], ...]:
-    """Exception types that are the user's to fix (one line, exit 2)."""
+    """Exception types that are the user's to fix (one line, exit 2).  Imported here,
+    not at the top, so that `cuewatch --help` does not load every stage."""
+    from monitor.alerts import AlertUsageError
+    from monitor.audit import ExportUsageError
     from monitor.ingest import IngestUsageError
     from monitor.ingest_checks import FileRejected
+    from monitor.schedule import ScheduleUsageError
     from monitor.store import StoreBusy, StoreMismatch
 
-    errors: list[type[Exception]] = [
+    return (
         ConfigError,
         IngestUsageError,
         FileRejected,
         StoreBusy,
         StoreMismatch,
-    ]
-    for module, name in (
-        ("monitor.windows", "RefitUsageError"),
-        ("monitor.alerts", "AlertUsageError"),
-        ("monitor.audit", "ExportUsageError"),
-        ("monitor.schedule", "ScheduleUsageError"),
-    ):
-        try:
-            mod = __import__(module, fromlist=[name])
-            errors.append(getattr(mod, name))
-        except (ImportError, AttributeError):
-            continue
-    return tuple(errors)
+        AlertUsageError,
+        ExportUsageError,
+        ScheduleUsageError,
+    )
 
 
 def fail(message: str) -> None:
@@ -543,23 +538,3 @@ def demo(
 
     click.echo(f"Starting the dashboard on http://127.0.0.1:{port} (Ctrl-C stops it) ...")
     sys.exit(launch(load_config(result["config"]), port=port))
-
-
-def _register_optional_commands() -> None:
-    """Commands owned by later stages register themselves when their module exists."""
-    for module in (
-        "monitor.cli_fits",
-        "monitor.cli_alerts",
-        "monitor.cli_audit",
-        "monitor.cli_demo",
-    ):
-        try:
-            mod = __import__(module, fromlist=["register"])
-        except ImportError as exc:
-            if exc.name != module:
-                raise
-            continue
-        mod.register(main)
-
-
-_register_optional_commands()

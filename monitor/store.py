@@ -427,6 +427,16 @@ class Store:
         )
 
 
+def get_fact(con: duckdb.DuckDBPyConnection, key: str) -> str | None:
+    """A value from ``store_facts`` (None when unset)."""
+    rows = con.execute("SELECT value FROM store_facts WHERE key = ?", [key]).fetchall()
+    return rows[0][0] if rows else None
+
+
+def set_fact(con: duckdb.DuckDBPyConnection, key: str, value: str) -> None:
+    con.execute("INSERT OR REPLACE INTO store_facts VALUES (?, ?, ?)", [key, value, utc_now()])
+
+
 def latest_version() -> int:
     return max(v for v, _, _ in MIGRATIONS)
 

@@ -19,7 +19,6 @@ import json
 from dataclasses import dataclass
 from datetime import timedelta
 
-import duckdb
 import numpy as np
 import pandas as pd
 
@@ -28,7 +27,7 @@ from monitor.fits_read import CUE_FIELDS, FIT_FIELDS, read_fits
 from monitor.fits_write import delete_windows, fit_tables, insert_arrow
 from monitor.lens import LensFits, fit_lens, fit_lens_rows, replace_rows, stack
 from monitor.moments_sql import MomentLayout, design_expressions, moments_sql
-from monitor.store import Store, quote_ident, sql_literal, utc_now
+from monitor.store import Store, get_fact, quote_ident, set_fact, sql_literal, utc_now
 from monitor.window_plan import (
     ALL_KEY,
     EPOCH,
@@ -47,10 +46,6 @@ SCOPES = ("decision_maker", "team", "all")
 BUCKET_LAYOUT = "shifted-sums-2"
 # DuckDB memory bound once the bucket SQL is done (it spills beyond it, never fails).
 AFTER_SQL_MEMORY_LIMIT = "256MB"
-
-
-class RefitUsageError(Exception):
-    """A user error in the refit / fits commands."""
 
 
 def design_signature(config: Config) -> str:
@@ -78,15 +73,6 @@ def _bucket_table_sql(layout: MomentLayout) -> str:
         "CREATE TABLE bucket_stats (decision_maker VARCHAR NOT NULL, day DATE NOT NULL, "
         f"team VARCHAR, {cols})"
     )
-
-
-def _get_fact(con: duckdb.DuckDBPyConnection, key: str) -> str | None:
-    rows = con.execute("SELECT value FROM store_facts WHERE key = ?", [key]).fetchall()
-    return rows[0][0] if rows else None
-
-
-def _set_fact(con: duckdb.DuckDBPyConnection, key: str, value: str) -> None:
-    con.execute("INSERT OR REPLACE INTO store_facts VALUES (?, ?, ?)", [key, value, utc_now()])
 
 
 def _compute_buckets(con, config: Config, where: str, restrict: bool) -> None:
@@ -163,7 +149,7 @@ def refit(config: Config, *, full: bool = False) -> RefitSummary:
         sig = design_signature(config)
         con.execute("BEGIN")
         try:
-            if full or _get_fact(con, "design_signature") != sig or not _has_buckets(con):
+            if full or get_fact(con, "design_signature") != sig or not _has_buckets(con):
                 summary = _refit_full(con, config, sig)
             else:
                 summary = _refit_incremental(con, config, sig)
@@ -210,8 +196,8 @@ def _refit_full(con, config: Config, sig: str) -> RefitSummary:
         fitted_n, refit_n = _fit_and_write(con, config, sig, series, ent, end, start, stop)
         fitted += fitted_n
         refitted += refit_n
-    _set_fact(con, "design_signature", sig)
-    _set_fact(con, "last_refit", utc_now().isoformat())
+    set_fact(con, "design_signature", sig)
+    set_fact(con, "last_refit", utc_now().isoformat())
     return RefitSummary("full", int(n_dirty), n_buckets, fitted, refitted, 0.0)
 
 
@@ -296,7 +282,7 @@ def _refit_incremental(con, config: Config, sig: str) -> RefitSummary:
         fitted_n, refit_n = _fit_and_write(con, config, sig, series, ent, end, start, stop)
         fitted += fitted_n
         refitted += refit_n
-    _set_fact(con, "last_refit", utc_now().isoformat())
+    set_fact(con, "last_refit", utc_now().isoformat())
     return RefitSummary("incremental", int(n_dirty), len(dirty), fitted, refitted, 0.0)
 
 
@@ -392,7 +378,6 @@ __all__ = [
     "CUE_FIELDS",
     "EPOCH",
     "FIT_FIELDS",
-    "RefitUsageError",
     "Series",
     "WindowPlan",
     "aligned_ends",
