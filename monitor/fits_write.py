@@ -7,10 +7,9 @@ object columns was the slowest step of a refit.
 
 from __future__ import annotations
 
-from datetime import date, timedelta
+from datetime import date
 
 import numpy as np
-import pandas as pd
 import pyarrow as pa
 
 from monitor import __version__
@@ -123,14 +122,18 @@ def fit_tables(
     return pa.table(fit_cols), pa.table(cue_cols)
 
 
-def delete_windows(con, scope: str, wanted: dict[object, set[int]]) -> None:
-    """Remove the stored fits and cue weights of the windows {key: {end day numbers}}
-    of one scope (one set-based DELETE per table)."""
-    if not wanted:
+def delete_windows(con, scope: str, keys: np.ndarray, ends: np.ndarray) -> None:
+    """Remove the stored fits and cue weights of the windows (key, end day number) of one
+    scope (one set-based DELETE per table)."""
+    if not len(keys):
         return
-    rows = [(str(k), EPOCH + timedelta(days=int(e))) for k, ends in wanted.items() for e in ends]
-    df = pd.DataFrame(rows, columns=["decision_maker", "window_end"])
-    con.register("_gone", df)
+    gone = pa.table(
+        {
+            "decision_maker": pa.array([str(k) for k in keys], pa.string()),
+            "window_end": pa.array(np.asarray(ends, dtype=np.int32), pa.int32()).cast(pa.date32()),
+        }
+    )
+    con.register("_gone", gone)
     try:
         for table in ("fits", "cue_weights"):
             con.execute(

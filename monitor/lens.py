@@ -20,7 +20,7 @@ import numpy as np
 
 # The statistics live in their own module; re-exported so ``from monitor.lens import
 # Moments`` keeps working.
-from monitor.moments import Moments, empty_moments, merge, moments_from_rows, window_sums
+from monitor.moments import Moments, empty_moments, merge, moments_from_rows
 
 __all__ = [
     "COLLINEAR_CONDITION",
@@ -33,7 +33,6 @@ __all__ = [
     "moments_from_rows",
     "replace_rows",
     "stack",
-    "window_sums",
 ]
 
 

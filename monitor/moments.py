@@ -3,8 +3,9 @@
 Sufficient statistics for a set of rows z (one row per judgment, columns
 ``z = (x_1 .. x_k, Ys[, Ye])``) are the count ``n``, the mean vector and the
 centred co-moment matrix ``M = sum_i (z_i - mean)(z_i - mean)^T``.  They merge
-exactly with the pairwise update of Chan, Golub & LeVeque (1979), which is what lets
-a window's statistics be assembled from per-day buckets (``window_sums``).
+exactly with the pairwise update of Chan, Golub & LeVeque (1979) (``merge``), or, for
+many sets at once, with the two-pass pooling formula (``group_sums``).  The stored
+per-day buckets use the shifted-sum form of the same statistics (``moments_sql``).
 """
 
 from __future__ import annotations
@@ -81,96 +82,6 @@ def merge(a: Moments, b: Moments) -> Moments:
     return Moments(n, mean, comoment)
 
 
-def window_sums(bucket: Moments, starts: np.ndarray, stops: np.ndarray) -> Moments:
-    """Merged moments of the buckets ``[starts[w], stops[w])`` for every range ``w``.
-
-    bucket: a stack of B bucket statistics (ordered e.g. by decision-maker, day);
-    starts, stops: (m,) integer index ranges, half-open; an empty range gives n = 0.
-
-    Why this keeps the digits: raw power sums (sum x, sum x x^T) of cues with a large
-    mean cancel catastrophically when turned back into a centred co-moment (a cue with
-    mean 1e4 and sd 1 loses about eight digits).  Here nothing but centred statistics
-    is ever added: a segment tree whose nodes are Chan merges of their two children is
-    built once, and each range is the Chan merge of the O(log B) nodes covering it.
-    Every step adds centred co-moments plus a ``delta delta^T`` term whose ``delta`` is
-    a difference of nearby means, so the rounding error stays a few ulps of the
-    centred co-moment times log2(B), independent of the size of the means.
-    Memory: two copies of the bucket stack.
-    """
-    starts = np.asarray(starts, dtype=np.int64)
-    stops = np.asarray(stops, dtype=np.int64)
-    size, p = bucket.size, bucket.width
-    # Iterative bottom-up segment tree (leaves at [size, 2 size)); valid for any size
-    # because the merge is commutative.
-    n = np.zeros(2 * size)
-    mean = np.zeros((2 * size, p))
-    com = np.zeros((2 * size, p, p))
-    n[size:], mean[size:], com[size:] = bucket.n, bucket.mean, bucket.comoment
-    hi = size
-    while hi > 1:
-        lo = (hi + 1) // 2  # children 2i, 2i+1 of every node in [lo, hi) are built
-        left = Moments(n[2 * lo : 2 * hi : 2], mean[2 * lo : 2 * hi : 2], com[2 * lo : 2 * hi : 2])
-        right = Moments(
-            n[2 * lo + 1 : 2 * hi : 2], mean[2 * lo + 1 : 2 * hi : 2], com[2 * lo + 1 : 2 * hi : 2]
-        )
-        node = merge(left, right)
-        n[lo:hi], mean[lo:hi], com[lo:hi] = node.n, node.mean, node.comoment
-        hi = lo
-    tree = Moments(n, mean, com)
-    acc = empty_moments(starts.shape[0], p)
-    lft, rgt = starts + size, np.maximum(stops, starts) + size
-    while np.any(lft < rgt):
-        live = lft < rgt
-        use = live & (lft % 2 == 1)
-        acc = merge(acc, _masked_take(tree, lft, use))
-        lft = lft + use
-        use = live & (rgt % 2 == 1)
-        rgt = rgt - use
-        acc = merge(acc, _masked_take(tree, rgt, use))
-        lft, rgt = lft // 2, rgt // 2
-    return acc
-
-
-def _masked_take(tree: Moments, index: np.ndarray, use: np.ndarray) -> Moments:
-    """Nodes ``tree[index]`` where ``use``, empty sets (the merge identity) elsewhere."""
-    part = tree.take(np.where(use, index, 0))
-    keep = use.astype(float)
-    return Moments(part.n * keep, part.mean * keep[:, None], part.comoment * keep[:, None, None])
-
-
-def _masked(stack: Moments, index: np.ndarray, use: np.ndarray) -> Moments:
-    """``stack[index]`` where ``use``, the merge identity (an empty set) elsewhere."""
-    part = stack.take(np.where(use, index, 0))
-    return Moments(
-        np.where(use, part.n, 0.0),
-        np.where(use[:, None], part.mean, 0.0),
-        np.where(use[:, None, None], part.comoment, 0.0),
-    )
-
-
-def _segmented_scan(bucket: Moments, seg_start: np.ndarray, reverse: bool) -> Moments:
-    """Running merges within consecutive segments: element i holds the merge of its
-    segment's elements from the segment start up to i (or from i to the segment end
-    when ``reverse``).  One vectorised merge per position in the longest segment."""
-    size = bucket.size
-    idx = np.arange(size)
-    starts = np.flatnonzero(seg_start)
-    stops = np.append(starts[1:], size)
-    seg = np.cumsum(seg_start) - 1
-    pos = (stops[seg] - 1 - idx) if reverse else (idx - starts[seg])
-    out = Moments(bucket.n.copy(), bucket.mean.copy(), bucket.comoment.copy())
-    step = 1 if reverse else -1  # where the running merge so far sits
-    order = np.argsort(pos, kind="stable")
-    bounds = np.searchsorted(pos[order], np.arange(1, int(pos.max(initial=0)) + 2))
-    for j in range(len(bounds) - 1):
-        here = order[bounds[j] : bounds[j + 1]]
-        if not len(here):
-            continue
-        acc = merge(out.take(here + step), bucket.take(here))
-        out.n[here], out.mean[here], out.comoment[here] = acc.n, acc.mean, acc.comoment
-    return out
-
-
 def group_sums(bucket: Moments, group: np.ndarray, n_groups: int) -> Moments:
     """Merged moments per group: result ``g`` merges every bucket with ``group == g``
     (any order; a group without members gives n = 0).
@@ -203,64 +114,3 @@ def group_sums(bucket: Moments, group: np.ndarray, n_groups: int) -> Moments:
     spread += bucket.comoment
     comoment = (member @ spread.reshape(size, p * p)).reshape(n_groups, p, p)
     return Moments(n, mean, comoment)
-
-
-def segment_sums(bucket: Moments, seg_start: np.ndarray) -> Moments:
-    """Merged moments of consecutive segments (``seg_start`` True at each segment's
-    first element); one result per segment, in order (``group_sums``)."""
-    seg_start = np.asarray(seg_start, dtype=bool)
-    if not bucket.size:
-        return bucket
-    seg = np.cumsum(seg_start) - 1
-    return group_sums(bucket, seg, int(seg[-1]) + 1)
-
-
-def fixed_window_sums(
-    bucket: Moments,
-    group: np.ndarray,
-    day: np.ndarray,
-    win_group: np.ndarray,
-    win_end: np.ndarray,
-    length: int,
-) -> Moments:
-    """Merged moments of fixed-length day windows ``[end - length + 1, end]``.
-
-    bucket: B statistics sorted by (group, day), at most one per (group, day), with
-    their integer ``group`` and ``day`` (e.g. days since 1970); win_group, win_end:
-    (m,) the windows.  An empty window gives n = 0.
-
-    Why it is fast: days are cut into blocks of ``length`` days (``day // length``), so a
-    window covers the tail of one block and the head of the next (or exactly one
-    block).  Running merges from each block's start (prefix) and to its end (suffix)
-    take one vectorised pass per day of a block; then each window is one Chan merge
-    of a suffix and a prefix.  Only centred statistics are ever added, as in
-    ``window_sums``.  Each suffix and prefix used runs over buckets inside the window
-    only, so a window's figures (to the last bit) do not depend on which other days
-    were loaded: an incremental refresh reproduces a full one.
-    """
-    group = np.asarray(group, dtype=np.int64)
-    day = np.asarray(day, dtype=np.int64)
-    win_group = np.asarray(win_group, dtype=np.int64)
-    win_end = np.asarray(win_end, dtype=np.int64)
-    m = win_end.shape[0]
-    if not bucket.size or not m:
-        return empty_moments(m, bucket.width)
-    big = np.int64(1) << 40
-    block = day // length
-    key = group * big + block
-    seg_start = np.ones(bucket.size, dtype=bool)
-    seg_start[1:] = key[1:] != key[:-1]
-    prefix = _segmented_scan(bucket, seg_start, reverse=False)
-    suffix = _segmented_scan(bucket, seg_start, reverse=True)
-    composite = group * big + day  # sorted, as the buckets are
-    first = win_end - length + 1
-    b_first, b_end = first // length, win_end // length
-    i0 = np.searchsorted(composite, win_group * big + first, side="left")
-    i0c = np.minimum(i0, bucket.size - 1)
-    left_ok = (i0 < bucket.size) & (key[i0c] == win_group * big + b_first)
-    # Aligned windows are one whole block: the suffix from its first day.
-    left_ok &= composite[i0c] <= win_group * big + win_end
-    i1 = np.searchsorted(composite, win_group * big + win_end, side="right") - 1
-    i1c = np.maximum(i1, 0)
-    right_ok = (i1 >= 0) & (b_end != b_first) & (key[i1c] == win_group * big + b_end)
-    return merge(_masked(suffix, i0c, left_ok), _masked(prefix, i1c, right_ok))

@@ -1,5 +1,6 @@
-"""Which windows to fit and their merged statistics: the day-bucket series of each
-scope (decision-maker, team, all) and the aligned window ends.
+"""Which windows to fit and their statistics: the aligned window ends, each
+decision-maker's window sums from their day buckets, and the pooled team and all
+windows.
 
 Windows are ``length_days`` long and end every ``step_days`` days on dates aligned
 to ``windows.origin``; a window ending on E covers the days E-length+1 .. E.
@@ -13,8 +14,8 @@ from datetime import date, timedelta
 import numpy as np
 
 from monitor.config import Config
-from monitor.moments import Moments, fixed_window_sums, group_sums
-from monitor.moments_sql import MomentLayout
+from monitor.moments import Moments, group_sums
+from monitor.moments_sql import StatLayout
 
 EPOCH = date(1970, 1, 1)
 ALL_KEY = "all"
@@ -28,18 +29,6 @@ def day_number(d: date) -> int:
 def from_day_number(n: int) -> date:
     """The date ``n`` days after 1970-01-01."""
     return EPOCH + timedelta(days=int(n))
-
-
-@dataclass(frozen=True)
-class WindowPlan:
-    """The windows to fit: for each, its series (entity) and the bucket index range."""
-
-    scope: np.ndarray  # (w,) object
-    key: np.ndarray  # (w,) object: decision-maker id, team name or "all"
-    team: np.ndarray  # (w,) object
-    end_day: np.ndarray  # (w,) int day numbers
-    start: np.ndarray  # (w,) bucket index range [start, stop) in the scope's series
-    stop: np.ndarray
 
 
 def aligned_ends(config: Config, first_day: int, last_day: int) -> np.ndarray:
@@ -70,122 +59,179 @@ def covering_ends(config: Config, days: np.ndarray, newest: int) -> tuple[np.nda
     return rows, ends[rows, cols]
 
 
-@dataclass(frozen=True)
-class Series:
-    """Day buckets of several entities of one scope, sorted by (entity, day)."""
+@dataclass
+class Buckets:
+    """Bucket parts of several decision-makers (any order) as held in memory.
 
-    scope: str
-    keys: np.ndarray  # (e,) entity keys
-    teams: np.ndarray  # (e,) the entity's team (latest seen)
-    entity: np.ndarray  # (b,) entity index per bucket
-    day: np.ndarray  # (b,) day numbers
-    all_rows: Moments
-    linked: Moments
+    keys: (e,) decision-maker ids; shift: (e, p_linked) their shifts; team: (e,) the
+    team on each one's latest bucket; ent, day, linked: (b,) decision-maker index, day
+    number and part (rows with an outcome or not) per stored part; part_team: (b,) the
+    part's team; sums: (b, part_width) its shifted sums (``StatLayout``).
+    """
 
-
-def _group_series(
-    base: Series, scope: str, group_of_entity: np.ndarray, keys: np.ndarray
-) -> Series:
-    """Merge a finer series into coarser entities (e.g. decision-makers into teams)."""
-    g = group_of_entity[base.entity].astype(np.int64)
-    # (group, day) codes in sorted order; buckets are merged in place, unsorted.
-    big = np.int64(1) << 32
-    codes, cell = np.unique(g * big + base.day, return_inverse=True)
-    all_rows = group_sums(base.all_rows, cell, len(codes))
-    linked = group_sums(base.linked, cell, len(codes))
-    teams = keys if scope == "team" else np.array([None] * len(keys), dtype=object)
-    return Series(scope, keys, teams, codes // big, codes % big, all_rows, linked)
+    keys: np.ndarray
+    shift: np.ndarray
+    team: np.ndarray
+    ent: np.ndarray
+    day: np.ndarray
+    linked: np.ndarray
+    part_team: np.ndarray
+    sums: np.ndarray
 
 
-def build_series(frame: dict[str, np.ndarray], layout: MomentLayout) -> dict[str, Series]:
-    """Decision-maker, team and all series from fetched bucket rows."""
-    dm = np.asarray(frame["decision_maker"], dtype=object)
-    days = np.asarray(frame["day_number"], dtype=np.int64)
-    team = np.asarray(frame["team"], dtype=object)
-    order = np.lexsort((days, dm))
-    if np.array_equal(order, np.arange(len(order))):
-        arrays = frame  # fetched in order already: skip a copy of every column
-    else:
-        arrays = {k: np.asarray(v)[order] for k, v in frame.items()}
-        dm, days, team = dm[order], days[order], team[order]
-    all_rows, linked = layout.to_moments(arrays)
-    del arrays
-    keys, entity = (
-        np.unique(dm, return_inverse=True)
-        if len(dm)
-        else (np.array([], dtype=object), np.array([], dtype=int))
-    )
-    # A decision-maker's team: the one on their latest bucket.
-    last = np.zeros(len(keys), dtype=int)
-    if len(dm):
-        last[entity] = np.arange(len(dm))  # later buckets overwrite earlier ones
-    teams = team[last] if len(dm) else np.array([], dtype=object)
-    per_dm = Series("decision_maker", keys.astype(object), teams, entity, days, all_rows, linked)
-    team_keys = np.array(sorted({t for t in teams if t is not None}), dtype=object)
-    team_index = {t: i for i, t in enumerate(team_keys)}
-    has_team = np.array([t is not None for t in teams], dtype=bool)
-    out = {"decision_maker": per_dm}
-    if len(team_keys):
-        sub = np.flatnonzero(has_team[entity])
-        whole = len(sub) == len(entity)  # everyone has a team: no copy of the stacks
-        base = (
-            per_dm
-            if whole
-            else Series(
-                "decision_maker",
-                keys,
-                teams,
-                entity[sub],
-                days[sub],
-                all_rows.take(sub),
-                linked.take(sub),
-            )
-        )
-        group = np.array([team_index.get(t, -1) for t in teams])
-        out["team"] = _group_series(base, "team", group, team_keys)
-    if len(keys):
-        out["all"] = _group_series(
-            per_dm, "all", np.zeros(len(keys), dtype=int), np.array([ALL_KEY], dtype=object)
-        )
+def latest_teams(
+    n_keys: int, ent: np.ndarray, day: np.ndarray, team: np.ndarray, rank: np.ndarray
+) -> np.ndarray:
+    """Each entity's team on its latest bucket, the greatest if its parts differ (None
+    for an entity without buckets).  rank: the teams' sort order (-1 for None)."""
+    out = np.full(n_keys, None, dtype=object)
+    order = np.lexsort((rank, day, ent))
+    out[ent[order]] = team[order]  # later buckets overwrite earlier ones
     return out
 
 
-def plan_windows(
-    config: Config, series: Series, wanted: dict[object, set[int]] | None, last_day: int
-) -> tuple[np.ndarray, np.ndarray, np.ndarray, np.ndarray]:
-    """(entity index, end day, start, stop) for every window of the series, or only
-    for the wanted {key: {end days}}."""
-    length = config.windows.length_days
-    ent_l, end_l = [], []
-    for e, key in enumerate(series.keys):
-        mine = series.day[series.entity == e]
-        if not len(mine):
-            continue
-        ends = aligned_ends(config, int(mine.min()), max(int(mine.max()), last_day))
-        if wanted is not None:
-            want = wanted.get(key)
-            if not want:
-                continue
-            ends = ends[np.isin(ends, np.fromiter(want, dtype=np.int64))]
-        ent_l.append(np.full(len(ends), e))
-        end_l.append(ends)
-    if not ent_l:
-        z = np.array([], dtype=np.int64)
-        return z, z, z, z
-    ent = np.concatenate(ent_l)
-    end = np.concatenate(end_l)
-    big = np.int64(10_000_000)
-    composite = series.entity.astype(np.int64) * big + series.day
-    start = np.searchsorted(composite, ent * big + (end - length + 1), side="left")
-    stop = np.searchsorted(composite, ent * big + end, side="right")
-    nonempty = stop > start
-    return ent[nonempty], end[nonempty], start[nonempty], stop[nonempty]
+# Bytes of the dense (decision-maker, day) grid built at once by ``window_sums``.
+GRID_BYTES = 4 << 20
 
 
-def window_moments(config: Config, series: Series, ent, end) -> tuple[Moments, Moments]:
-    """(all rows, linked rows) statistics of the windows (entity index, end day)."""
-    length = config.windows.length_days
-    return (
-        fixed_window_sums(series.all_rows, series.entity, series.day, ent, end, length),
-        fixed_window_sums(series.linked, series.entity, series.day, ent, end, length),
+def window_sums(
+    ent: np.ndarray,
+    day: np.ndarray,
+    linked: np.ndarray,
+    sums: np.ndarray,
+    win_ent: np.ndarray,
+    win_end: np.ndarray,
+    length: int,
+) -> np.ndarray:
+    """Plain sums of the bucket parts over each window ``[end - length + 1, end]`` of
+    entity ``win_ent``: (m, 2 * part_width), the unlinked parts' sums then the linked
+    parts'.  Parts may come in any order, at most one per (entity, day, linked); only
+    parts inside a window count.
+
+    Days are cut into blocks of ``length`` days (``day // length``), so a window is the
+    tail of one block plus the head of the next (or exactly one block).  On a dense
+    (entity, block, day-in-block) grid, running sums from each block's end backwards
+    (suffix) and from its start (prefix) take two ``cumsum`` passes; a window is then one
+    suffix plus one prefix.  Each is summed over days inside the window only, in a fixed
+    order, so a window's sums do not depend - to the last bit - on which other days were
+    loaded: an incremental refresh reproduces a full one.  The grid is built for a
+    chunk of entities at a time (``GRID_BYTES``).
+    """
+    ent = np.asarray(ent, dtype=np.int64)
+    day = np.asarray(day, dtype=np.int64)
+    linked = np.asarray(linked, dtype=bool)
+    win_ent = np.asarray(win_ent, dtype=np.int64)
+    win_end = np.asarray(win_end, dtype=np.int64)
+    part = sums.shape[1]
+    width = 2 * part
+    out = np.zeros((len(win_end), width))
+    if not len(win_end) or not len(day):
+        return out
+    first = win_end - length + 1
+    d0 = (int(first.min()) // length) * length
+    d1 = (int(win_end.max()) // length + 1) * length  # exclusive
+    blocks = (d1 - d0) // length
+    keep = np.flatnonzero((day >= d0) & (day < d1))
+    by_ent = keep[np.argsort(ent[keep], kind="stable")]
+    ent_sorted = ent[by_ent]
+    w_order = np.argsort(win_ent, kind="stable")
+    w_sorted = win_ent[w_order]
+    wanted = np.unique(win_ent)
+    # A small grid per chunk (a few MB) stays in cache: 4x faster than one large grid.
+    step = max(1, GRID_BYTES // (blocks * length * width * 8))
+    for at in range(0, len(wanted), step):
+        chunk = wanted[at : at + step]
+        lo_e, hi_e = int(chunk[0]), int(chunk[-1])
+        grid = np.zeros((len(chunk), blocks, length, width))
+        a, b = np.searchsorted(ent_sorted, [lo_e, hi_e + 1])
+        rows = by_ent[a:b]
+        slot = np.searchsorted(chunk, ent[rows])
+        rows, slot = rows[chunk[slot] == ent[rows]], slot[chunk[slot] == ent[rows]]
+        off = day[rows] - d0
+        for half in (False, True):
+            mine = linked[rows] == half
+            cols = slice(part, width) if half else slice(0, part)
+            grid[slot[mine], off[mine] // length, off[mine] % length, cols] = sums[rows[mine]]
+        suffix = np.cumsum(grid[:, :, ::-1], axis=2)[:, :, ::-1]
+        np.cumsum(grid, axis=2, out=grid)  # now the prefix sums
+        a, b = np.searchsorted(w_sorted, [lo_e, hi_e + 1])
+        w = w_order[a:b]
+        e = np.searchsorted(chunk, win_ent[w])
+        f_off, e_off = first[w] - d0, win_end[w] - d0
+        bf, be = f_off // length, e_off // length
+        res = suffix[e, bf, f_off % length]
+        two = be != bf  # not block-aligned: add the next block's head
+        res[two] += grid[e[two], be[two], e_off[two] % length]
+        out[w] = res
+        del grid, suffix
+    return out
+
+
+@dataclass
+class ScopeWindows:
+    """Windows of one scope ready to fit: keys, teams and end days (m,), and their
+    statistics (all rows, linked rows)."""
+
+    scope: str
+    keys: np.ndarray
+    teams: np.ndarray
+    end: np.ndarray
+    all_rows: Moments
+    linked: Moments
+
+    def take(self, index: np.ndarray) -> ScopeWindows:
+        return ScopeWindows(
+            self.scope,
+            self.keys[index],
+            self.teams[index],
+            self.end[index],
+            self.all_rows.take(index),
+            self.linked.take(index),
+        )
+
+
+def decision_maker_windows(
+    buckets: Buckets, layout: StatLayout, win_ent: np.ndarray, win_end: np.ndarray, length: int
+) -> ScopeWindows:
+    """The windows (entity index, end day) of single decision-makers, empty ones
+    dropped."""
+    sums = window_sums(
+        buckets.ent, buckets.day, buckets.linked, buckets.sums, win_ent, win_end, length
     )
+    live = layout.count(sums) > 0
+    sums, win_ent, win_end = sums[live], win_ent[live], win_end[live]
+    all_rows, linked = layout.finish(sums, buckets.shift[win_ent])
+    return ScopeWindows(
+        "decision_maker",
+        buckets.keys[win_ent].astype(object),
+        buckets.team[win_ent],
+        np.asarray(win_end, dtype=np.int64),
+        all_rows,
+        linked,
+    )
+
+
+def pooled_windows(per_dm: ScopeWindows, scope: str) -> ScopeWindows:
+    """Team or all windows pooled from decision-maker windows with the same end (the
+    two-pass formula, ``moments.group_sums``); a decision-maker counts in the team on
+    their latest bucket."""
+    if scope == "team":
+        has = np.array([t is not None for t in per_dm.teams], dtype=bool)
+        src = per_dm.take(np.flatnonzero(has))
+        label = src.teams.astype(object)
+    else:
+        src = per_dm
+        label = np.full(len(src.end), ALL_KEY, dtype=object)
+    if not len(src.end):
+        z = np.array([], dtype=object)
+        empty = Moments(np.zeros(0), np.zeros((0, 0)), np.zeros((0, 0, 0)))
+        return ScopeWindows(scope, z, z, np.array([], dtype=np.int64), empty, empty)
+    names, name_ix = np.unique(label.astype(str), return_inverse=True)
+    ends, end_ix = np.unique(src.end, return_inverse=True)
+    cell = name_ix.astype(np.int64) * len(ends) + end_ix
+    codes, group = np.unique(cell, return_inverse=True)
+    all_rows = group_sums(src.all_rows, group, len(codes))
+    linked = group_sums(src.linked, group, len(codes))
+    keys = names[codes // len(ends)].astype(object)
+    teams = keys if scope == "team" else np.full(len(codes), None, dtype=object)
+    return ScopeWindows(scope, keys, teams, ends[codes % len(ends)], all_rows, linked)

@@ -1,10 +1,12 @@
 """Bucket statistics and the rolling-window refresh (`cuewatch refit`).
 
 Per (decision-maker, day) the store keeps the sufficient statistics of that day's
-judgments (``bucket_stats``; see ``moments_sql``).  A window's statistics are the
-merge of its days' buckets, for one decision-maker, a team or everyone, so a refresh
-only recomputes the buckets that new decisions, new outcomes or outcome corrections
-made dirty, and then only the windows that cover them.
+judgments (``bucket_stats``, shifted sums; see ``moments_sql``).  A decision-maker's
+window is the sum of its days' buckets; team and all windows pool the decision-makers'
+windows.  A refresh adds to the stored buckets what the batches since the last refit
+changed - new decisions, new outcomes, outcome corrections (``moments_sql.delta_sql``)
+- and refits only the windows covering the changed buckets.  Its cost follows the
+size of the news and of the windows it touches, not the length of history.
 
 Windows are ``length_days`` long and end every ``step_days`` days on dates aligned
 to ``windows.origin``; a window ending on E covers the days E-length+1 .. E.  The
@@ -16,36 +18,47 @@ from __future__ import annotations
 
 import hashlib
 import json
+import time
 from dataclasses import dataclass
 from datetime import timedelta
 
 import numpy as np
-import pandas as pd
+import pyarrow as pa
+import pyarrow.compute as pc
 
 from monitor.config import Config
 from monitor.fits_read import CUE_FIELDS, FIT_FIELDS, read_fits
 from monitor.fits_write import delete_windows, fit_tables, insert_arrow
 from monitor.lens import LensFits, fit_lens, fit_lens_rows, replace_rows, stack
-from monitor.moments_sql import MomentLayout, design_expressions, moments_sql
+from monitor.moments_sql import (
+    StatLayout,
+    delta_sql,
+    design_expressions,
+    new_shift_sql,
+    part_sql,
+    shift_select,
+)
 from monitor.store import Store, get_fact, quote_ident, set_fact, sql_literal, utc_now
 from monitor.window_plan import (
     ALL_KEY,
     EPOCH,
-    Series,
-    WindowPlan,
+    Buckets,
+    ScopeWindows,
     aligned_ends,
-    build_series,
     covering_ends,
     day_number,
+    decision_maker_windows,
     from_day_number,
-    plan_windows,
-    window_moments,
+    latest_teams,
+    pooled_windows,
 )
 
 SCOPES = ("decision_maker", "team", "all")
-BUCKET_LAYOUT = "shifted-sums-2"
+BUCKET_LAYOUT = "shifted-array-3"
 # DuckDB memory bound once the bucket SQL is done (it spills beyond it, never fails).
 AFTER_SQL_MEMORY_LIMIT = "256MB"
+# store_facts key: every batch up to this id is in the stored bucket statistics.
+THROUGH_BATCH = "buckets_through_batch"
 
 
 def design_signature(config: Config) -> str:
@@ -56,66 +69,203 @@ def design_signature(config: Config) -> str:
         for name, c in config.cues.items()
     }
     doc["__columns__"] = config.design_columns()
-    # The bucket_stats layout (MomentLayout.columns): a store written with another
-    # layout is rebuilt by a full refit instead of failing on a missing column.
+    # The bucket_stats layout (StatLayout): a store written with another layout is
+    # rebuilt by a full refit instead of failing on a missing column.
     doc["__bucket_layout__"] = BUCKET_LAYOUT
     return hashlib.sha256(json.dumps(doc, sort_keys=True).encode()).hexdigest()[:16]
 
 
-# --- bucket statistics ----------------------------------------------------------------
+def _layout(config: Config) -> StatLayout:
+    return StatLayout(len(config.design_columns()))
 
 
-def _bucket_table_sql(layout: MomentLayout) -> str:
-    cols = ", ".join(
-        f"{c} {'BIGINT' if c.startswith('n_') else 'DOUBLE'}" for c in layout.columns()
+# --- bucket statistics in memory and in the store ---------------------------------------
+
+
+def _create_bucket_tables(con, layout: StatLayout) -> None:
+    con.execute("DROP TABLE IF EXISTS bucket_stats")
+    con.execute("DROP TABLE IF EXISTS bucket_shifts")
+    con.execute(
+        "CREATE TABLE bucket_shifts (decision_maker VARCHAR NOT NULL, "
+        f"shift DOUBLE[{layout.p_linked}] NOT NULL)"
     )
-    return (
+    con.execute(
         "CREATE TABLE bucket_stats (decision_maker VARCHAR NOT NULL, day DATE NOT NULL, "
-        f"team VARCHAR, {cols})"
+        f"linked BOOLEAN NOT NULL, team VARCHAR, sums DOUBLE[{layout.part_width}] NOT NULL)"
     )
 
 
-def _compute_buckets(con, config: Config, where: str, restrict: bool) -> None:
-    """Bucket statistics of the decisions matching ``where`` into ``bucket_stats``,
-    staged in the temp table ``_new_buckets`` (left for the caller to read or drop).
+# Decision-makers numbered in id order: bucket rows are fetched with this number instead
+# of the id string (hundreds of thousands of strings cost more than the numbers).
+_NUMBERED = (
+    "(SELECT decision_maker, (row_number() OVER (ORDER BY decision_maker) - 1)::INTEGER "
+    "AS ent FROM bucket_shifts)"
+)
 
-    Staging measured 2.8 s + 0.8 s against 5.8 s for INSERT ... SELECT of the same
-    query straight into the stored table (5M decisions, 146k buckets)."""
-    select = moments_sql(
-        config,
-        group_by=["d.decision_maker AS decision_maker", "d.decided_day AS day"],
-        decision_filter=where,
-        restrict_outcomes=restrict,
+
+def _array_rows(arrow_column, width: int) -> np.ndarray:
+    """A fetched fixed-size DOUBLE array column as a fresh (m, width) float array (one
+    copy: each chunk's values are read in place)."""
+    parts = [c.flatten().to_numpy(zero_copy_only=False) for c in arrow_column.chunks]
+    if not parts:
+        return np.zeros((0, width))
+    return np.concatenate(parts).reshape(-1, width)
+
+
+def _strings(arrow_column) -> tuple[np.ndarray, np.ndarray]:
+    """A fetched string column as (object array with None for NULL, integer codes in
+    the values' sorted order with -1 for NULL), decoded once per distinct value."""
+    coded = pc.dictionary_encode(arrow_column).combine_chunks()
+    names = np.array(coded.dictionary.to_pylist(), dtype=object)
+    rank = np.empty(len(names), dtype=np.int64)
+    rank[np.argsort(names.astype(str), kind="stable")] = np.arange(len(names))
+    index = coded.indices.fill_null(-1).to_numpy(zero_copy_only=False).astype(np.int64)
+    text = np.append(names, None)[index]  # -1 picks the trailing None
+    rank = np.append(rank, -1)  # index -1 (NULL) ranks -1
+    return text, rank[index]
+
+
+def _fetch_parts(con, layout: StatLayout, sql: str) -> dict[str, np.ndarray]:
+    """Run a query returning (decision_maker, day, linked, team, sums) and fetch it with
+    decision-makers as numbers (``_NUMBERED``)."""
+    table = con.sql(
+        "SELECT k.ent, (b.day - DATE '1970-01-01')::INTEGER AS day, b.linked, b.team, b.sums "
+        f"FROM ({sql}) b JOIN {_NUMBERED} k USING (decision_maker)"
+    ).to_arrow_table()
+    return {
+        "ent": table.column(0).to_numpy().astype(np.int64),
+        "day": table.column(1).to_numpy().astype(np.int64),
+        "linked": table.column(2).to_numpy(zero_copy_only=False).astype(bool),
+        **dict(zip(("team", "team_code"), _strings(table.column(3)), strict=True)),
+        "sums": _array_rows(table.column(4), layout.part_width),
+    }
+
+
+def _fetch_buckets(con, layout: StatLayout, day_range: tuple[int, int] | None) -> Buckets:
+    """The stored bucket parts (of the days in ``day_range``, or all) with every
+    decision-maker's id and shift."""
+    where = ""
+    if day_range is not None:
+        lo, hi = (from_day_number(d).isoformat() for d in day_range)
+        where = f"WHERE day BETWEEN DATE '{lo}' AND DATE '{hi}'"
+    parts = _fetch_parts(con, layout, f"SELECT * FROM bucket_stats {where}")
+    table = con.sql(
+        "SELECT decision_maker, shift FROM bucket_shifts ORDER BY decision_maker"
+    ).to_arrow_table()
+    keys = np.array(table.column(0).to_pylist(), dtype=object)
+    shift = _array_rows(table.column(1), layout.p_linked)
+    teams = latest_teams(len(keys), parts["ent"], parts["day"], parts["team"], parts["team_code"])
+    return Buckets(
+        keys,
+        shift,
+        teams,
+        parts["ent"],
+        parts["day"],
+        parts["linked"],
+        parts["team"],
+        parts["sums"],
     )
-    layout = MomentLayout(len(config.design_columns()))
-    cols = ", ".join(["decision_maker", "day", "team", *layout.columns()])
-    con.execute(f"CREATE OR REPLACE TEMP TABLE _new_buckets AS {select}")
-    con.execute(f"INSERT INTO bucket_stats ({cols}) SELECT {cols} FROM _new_buckets")
+
+
+def _write_parts(con, keys: np.ndarray, ent, day, linked, team, sums) -> None:
+    width = sums.shape[1]
+    values = pa.array(np.ascontiguousarray(sums, dtype=float).ravel())
+    data = pa.table(
+        {
+            "decision_maker": pa.array(list(keys[ent]), pa.string()),
+            "day": pa.array(np.asarray(day, dtype=np.int32), pa.int32()).cast(pa.date32()),
+            "linked": pa.array(np.asarray(linked, dtype=bool)),
+            "team": pa.array(list(team), pa.string()),
+            "sums": pa.FixedSizeListArray.from_arrays(values, width),
+        }
+    )
+    insert_arrow(con, "bucket_stats", data)
 
 
 # --- fitting ------------------------------------------------------------------------
 
 
-def fit_series(
-    config: Config, series: Series, ent, end, start, stop, raw_rows=None, windows=None
+def fit_windows(
+    config: Config, windows: ScopeWindows, raw_rows=None
 ) -> tuple[LensFits, np.ndarray]:
-    """Fit every planned window of one series; returns the fits and a method label
-    per window ("moments" or "qr").  ``windows``: their statistics if already merged
-    (``window_moments``)."""
+    """Fit every window of one scope; returns the fits and a method label per window
+    ("moments" or "qr": refit from the window's raw rows when conditioning is poor)."""
     names = config.design_columns()
-    all_w, link_w = windows if windows is not None else window_moments(config, series, ent, end)
     min_rows = config.windows.min_rows
-    fits = fit_lens(all_w, link_w, names, min_rows=min_rows)
+    fits = fit_lens(windows.all_rows, windows.linked, names, min_rows=min_rows)
     method = np.array(["moments"] * fits.size, dtype=object)
     redo = np.flatnonzero(fits.needs_raw_refit)
     if len(redo) and raw_rows is not None:
         refits = []
         for i in redo:
-            x, ys, ye = raw_rows(series.scope, series.keys[ent[i]], int(end[i]))
+            x, ys, ye = raw_rows(windows.scope, windows.keys[i], int(windows.end[i]))
             refits.append(fit_lens_rows(x, ys, ye, names, min_rows=min_rows))
         fits = replace_rows(fits, redo, stack(refits))
         method[redo] = "qr"
     return fits, method
+
+
+def _fit_and_write(con, config: Config, sig: str, windows: ScopeWindows) -> tuple[int, int]:
+    if not len(windows.end):
+        return 0, 0
+    # Stored in window-end order: a nightly refit replaces recent windows, and DuckDB's
+    # checkpoint then rewrites only the last row groups instead of every one.
+    windows = windows.take(np.argsort(windows.end, kind="stable"))
+    fits, method = fit_windows(config, windows, _raw_rows_loader(con, config))
+    keys = windows.keys.astype(str)
+    fit_rows, cue_rows = fit_tables(
+        windows.scope,
+        keys,
+        windows.teams,
+        windows.end,
+        config.windows.length_days,
+        fits,
+        method,
+        windows.all_rows,
+        sig,
+    )
+    insert_arrow(con, "fits", fit_rows)
+    insert_arrow(con, "cue_weights", cue_rows)
+    return len(windows.end), int((method == "qr").sum())
+
+
+def _all_windows(config: Config, buckets: Buckets, ends: np.ndarray) -> dict[str, ScopeWindows]:
+    """Every non-empty window ending on ``ends`` of every decision-maker in ``buckets``,
+    and the team and all windows pooled from them."""
+    length = config.windows.length_days
+    ent = np.repeat(np.arange(len(buckets.keys)), len(ends))
+    end = np.tile(ends, len(buckets.keys))
+    per_dm = decision_maker_windows(buckets, _layout_of(buckets), ent, end, length)
+    return {
+        "decision_maker": per_dm,
+        "team": pooled_windows(per_dm, "team"),
+        "all": pooled_windows(per_dm, "all"),
+    }
+
+
+def _layout_of(buckets: Buckets) -> StatLayout:
+    return StatLayout(buckets.shift.shape[1] - 2)
+
+
+def _pairs(names: np.ndarray, label: np.ndarray, ends: np.ndarray, every, fresh: np.ndarray):
+    """Unique (key, end) pairs of one scope: ``names[label]`` at ``ends`` (negative
+    labels dropped), plus every label in ``every`` at each ``fresh`` end."""
+    every = np.asarray(every, dtype=np.int64)
+    label = np.concatenate([np.asarray(label, dtype=np.int64), np.repeat(every, len(fresh))])
+    ends = np.concatenate([ends, np.tile(fresh, len(every))]).astype(np.int64)
+    ok = label >= 0
+    codes = np.unique(label[ok] * (1 << 32) + ends[ok])
+    return names[codes >> 32].astype(object), codes & ((1 << 32) - 1)
+
+
+def _wanted(windows: ScopeWindows, keys: np.ndarray, ends: np.ndarray) -> ScopeWindows:
+    """The computed windows that are among the wanted (key, end) pairs."""
+    if not len(keys) or not len(windows.end):
+        return windows.take(np.array([], dtype=np.int64))
+    names, ix = np.unique(np.concatenate([keys, windows.keys]).astype(str), return_inverse=True)
+    want = ix[: len(keys)].astype(np.int64) * (1 << 32) + ends
+    have = ix[len(keys) :].astype(np.int64) * (1 << 32) + windows.end
+    return windows.take(np.flatnonzero(np.isin(have, want)))
 
 
 # --- the refresh --------------------------------------------------------------------
@@ -137,11 +287,10 @@ class RefitSummary:
 def refit(config: Config, *, full: bool = False) -> RefitSummary:
     """Bring bucket statistics and window fits up to date, in one transaction.
 
-    Incremental by default: only dirty buckets and the windows covering them.  A full
-    refit (or a changed design) recomputes everything; both give the same numbers.
+    Incremental by default: the buckets the new batches change and the windows covering
+    them.  A full refit (or a changed design) recomputes everything from the stored
+    rows; both give the same numbers.
     """
-    import time
-
     t0 = time.perf_counter()
     store = Store(config)
     with store.writer() as con:
@@ -149,10 +298,11 @@ def refit(config: Config, *, full: bool = False) -> RefitSummary:
         sig = design_signature(config)
         con.execute("BEGIN")
         try:
-            if full or get_fact(con, "design_signature") != sig or not _has_buckets(con):
+            through = get_fact(con, THROUGH_BATCH)
+            if full or get_fact(con, "design_signature") != sig or through is None:
                 summary = _refit_full(con, config, sig)
             else:
-                summary = _refit_incremental(con, config, sig)
+                summary = _refit_incremental(con, config, sig, int(through))
             con.execute("COMMIT")
         except BaseException:
             con.execute("ROLLBACK")
@@ -164,131 +314,176 @@ def refit(config: Config, *, full: bool = False) -> RefitSummary:
     return summary
 
 
-def _has_buckets(con) -> bool:
-    return bool(
+def _newest_batch(con) -> int:
+    row = con.execute(
+        "SELECT greatest(coalesce((SELECT max(batch_id) FROM decisions), 0), "
+        "coalesce((SELECT max(batch_id) FROM outcomes), 0))"
+    ).fetchall()[0]
+    return int(row[0])
+
+
+def _count_dirty(con) -> int:
+    return int(
         con.execute(
-            "SELECT count(*) FROM information_schema.tables WHERE table_name = 'bucket_stats'"
+            "SELECT count(*) FROM (SELECT DISTINCT decision_maker, day FROM dirty_buckets)"
         ).fetchall()[0][0]
     )
 
 
 def _refit_full(con, config: Config, sig: str) -> RefitSummary:
-    layout = MomentLayout(len(config.design_columns()))
-    con.execute("DROP TABLE IF EXISTS bucket_stats")
-    con.execute(_bucket_table_sql(layout))
-    _compute_buckets(con, config, "TRUE", restrict=False)
-    n_dirty = con.execute(
-        "SELECT count(*) FROM (SELECT DISTINCT decision_maker, day FROM dirty_buckets)"
-    ).fetchall()[0][0]
+    layout = _layout(config)
+    newest_batch = _newest_batch(con)
+    n_dirty = _count_dirty(con)
+    _create_bucket_tables(con, layout)
+    con.execute(f"INSERT INTO bucket_shifts {shift_select(config, 'TRUE')}")
+    # In day order, for the same reason as the fits (``_fit_and_write``).
+    con.execute(f"INSERT INTO bucket_stats {part_sql(config)} ORDER BY day, decision_maker, linked")
     con.execute("DELETE FROM dirty_buckets")
     con.execute("DELETE FROM fits")
     con.execute("DELETE FROM cue_weights")
-    frame = _fetch_buckets(con, layout, None, source="_new_buckets")
-    con.execute("DROP TABLE _new_buckets")
+    buckets = _fetch_buckets(con, layout, None)
     _release_cache(con)
-    n_buckets = len(frame["day_number"])
-    last_day = _last_day(con)
     fitted = refitted = 0
-    every = build_series(frame, layout)
-    del frame  # the wide fetched columns are no longer needed: lower peak memory
-    for _scope, series in every.items():
-        ent, end, start, stop = plan_windows(config, series, None, last_day)
-        fitted_n, refit_n = _fit_and_write(con, config, sig, series, ent, end, start, stop)
-        fitted += fitted_n
-        refitted += refit_n
+    n_buckets = len(np.unique(buckets.ent * (1 << 32) + buckets.day))
+    if len(buckets.day):
+        ends = aligned_ends(config, int(buckets.day.min()), int(buckets.day.max()))
+        for windows in _all_windows(config, buckets, ends).values():
+            fitted_n, refit_n = _fit_and_write(con, config, sig, windows)
+            fitted += fitted_n
+            refitted += refit_n
     set_fact(con, "design_signature", sig)
+    set_fact(con, THROUGH_BATCH, str(newest_batch))
     set_fact(con, "last_refit", utc_now().isoformat())
-    return RefitSummary("full", int(n_dirty), n_buckets, fitted, refitted, 0.0)
+    return RefitSummary("full", n_dirty, n_buckets, fitted, refitted, 0.0)
 
 
-def _refit_incremental(con, config: Config, sig: str) -> RefitSummary:
-    layout = MomentLayout(len(config.design_columns()))
-    stamp = con.execute("SELECT max(marked_at) FROM dirty_buckets").fetchall()[0][0]
-    if stamp is None:
-        return RefitSummary("nothing to do", 0, 0, 0, 0, 0.0)
-    con.execute(
-        "CREATE TEMP TABLE _dirty AS SELECT DISTINCT decision_maker, day FROM dirty_buckets "
-        "WHERE marked_at <= ?",
-        [stamp],
+def _fetch_delta(con, config: Config, layout: StatLayout, through: int) -> dict[str, np.ndarray]:
+    row = con.execute("SELECT min(day), max(day) FROM dirty_buckets").fetchall()[0]
+    day_range = None if row[0] is None else (row[0], row[1])
+    return _fetch_parts(con, layout, delta_sql(config, through, day_range))
+
+
+def _apply_delta(con, buckets: Buckets, delta: dict[str, np.ndarray]) -> tuple[Buckets, int]:
+    """Add the delta parts to the fetched ones (new parts appended), write the changed
+    parts back to the store; returns the updated frame and the number of changed
+    buckets.  ``buckets`` must hold every stored part of the delta's days."""
+
+    def code(ent, day, linked):
+        return (ent * (1 << 20) + day) * 2 + linked
+
+    have = code(buckets.ent, buckets.day, buckets.linked.astype(np.int64))
+    want = code(delta["ent"], delta["day"], delta["linked"].astype(np.int64))
+    order = np.argsort(have, kind="stable")
+    pos = np.searchsorted(have[order], want)
+    found = np.zeros(len(want), dtype=bool)
+    at = np.zeros(len(want), dtype=np.int64)
+    if len(have):
+        pos_c = np.minimum(pos, len(have) - 1)
+        found = have[order][pos_c] == want
+        at = order[pos_c]
+    sums, team = buckets.sums, buckets.part_team
+    hit = np.flatnonzero(found)
+    sums[at[hit]] += delta["sums"][hit]
+    # A part's team is the max over its rows: only parts whose new rows carry another
+    # team than the stored one need a look.
+    differ = hit[delta["team"][hit] != team[at[hit]]]
+    for i, j in zip(at[differ], differ, strict=True):
+        t = delta["team"][j]
+        if t is not None and (team[i] is None or t > team[i]):
+            team[i] = t
+    new = np.flatnonzero(~found)
+    n_old = len(buckets.day)
+    ent = np.concatenate([buckets.ent, delta["ent"][new]])
+    day = np.concatenate([buckets.day, delta["day"][new]])
+    linked = np.concatenate([buckets.linked, delta["linked"][new]])
+    team = np.concatenate([team, delta["team"][new]])
+    sums = np.concatenate([sums, delta["sums"][new]]) if len(new) else sums
+    changed = np.concatenate([at[hit], n_old + np.arange(len(new))])
+    gone = pa.table(
+        {
+            "decision_maker": pa.array(list(buckets.keys[ent[changed]]), pa.string()),
+            "day": pa.array(day[changed].astype(np.int32), pa.int32()).cast(pa.date32()),
+            "linked": pa.array(linked[changed]),
+        }
     )
+    con.register("_changed_parts", gone)
     try:
-        n_dirty = con.execute("SELECT count(*) FROM _dirty").fetchall()[0][0]
         con.execute(
-            "DELETE FROM bucket_stats b USING _dirty x "
-            "WHERE b.decision_maker = x.decision_maker AND b.day = x.day"
+            "DELETE FROM bucket_stats b USING _changed_parts c WHERE b.decision_maker = "
+            "c.decision_maker AND b.day = c.day AND b.linked = c.linked"
         )
-        lo_day, hi_day = con.execute("SELECT min(day), max(day) FROM _dirty").fetchone()
-        # The literal day range lets DuckDB skip row groups by their min/max (zone
-        # maps) before the semi-join: decisions arrive roughly in time order.
-        where = (
-            f"d.decided_day BETWEEN DATE '{lo_day}' AND DATE '{hi_day}' AND EXISTS "
-            "(SELECT 1 FROM _dirty x WHERE x.decision_maker = d.decision_maker "
-            "AND x.day = d.decided_day)"
-        )
-        _compute_buckets(con, config, where, restrict=True)
-        con.execute("DROP TABLE _new_buckets")
-        dirty = con.execute(
-            "SELECT x.decision_maker, (x.day - DATE '1970-01-01')::BIGINT, b.team "
-            "FROM _dirty x LEFT JOIN bucket_stats b USING (decision_maker, day)"
-        ).fetchall()
-        con.execute("DELETE FROM dirty_buckets WHERE marked_at <= ?", [stamp])
     finally:
-        con.execute("DROP TABLE IF EXISTS _dirty")
-
-    length = config.windows.length_days
-    last_day = _last_day(con)
-    wanted: dict[str, dict[object, set[int]]] = {s: {} for s in SCOPES}
-    lo, hi = None, None
-    teams_of = dict(
-        con.execute(
-            "SELECT decision_maker, arg_max(team, day) FROM bucket_stats GROUP BY decision_maker"
-        ).fetchall()
+        con.unregister("_changed_parts")
+    _write_parts(
+        con, buckets.keys, ent[changed], day[changed], linked[changed], team[changed], sums[changed]
     )
+    codes = _strings(pa.chunked_array([pa.array(list(team), pa.string())]))[1]
+    teams = latest_teams(len(buckets.keys), ent, day, team, codes)
+    frame = Buckets(buckets.keys, buckets.shift, teams, ent, day, linked, team, sums)
+    n_buckets = len(np.unique(ent[changed] * (1 << 32) + day[changed]))
+    return frame, n_buckets
+
+
+def _refit_incremental(con, config: Config, sig: str, through: int) -> RefitSummary:
+    layout = _layout(config)
+    newest_batch = _newest_batch(con)
+    n_dirty = _count_dirty(con)
+    if newest_batch <= through and not n_dirty:
+        return RefitSummary("nothing to do", 0, 0, 0, 0, 0.0)
+    con.execute(new_shift_sql(config, through))
+    delta = _fetch_delta(con, config, layout, through)
+    day = delta["day"]
+    length = config.windows.length_days
+    last_day = _last_day(con, day)
     newest = int(aligned_ends(config, last_day, last_day)[-1])
-    rows, ends = covering_ends(config, np.array([d[1] for d in dirty], dtype=np.int64), newest)
-    if len(rows):
-        dms = np.array([d[0] for d in dirty], dtype=object)[rows]
-        teams = np.array([d[2] or teams_of.get(d[0]) for d in dirty], dtype=object)[rows]
-        pairs = pd.DataFrame({"dm": dms, "team": teams, "end": ends})
-        for scope, col in (("decision_maker", "dm"), ("team", "team")):
-            unique = pairs[[col, "end"]].dropna().drop_duplicates()
-            for key, group in unique.groupby(col, sort=False)["end"]:
-                wanted[scope][key] = {int(e) for e in group}
-        wanted["all"][ALL_KEY] = {int(e) for e in np.unique(ends)}
-        lo, hi = int(ends.min()) - length + 1, int(ends.max())
-    # A full refit gives every series a window up to the newest aligned end, even a
-    # decision-maker with nothing new: when the newest end moves on, add it for all.
+    # Which window ends each scope needs: those covering a changed bucket, and, when
+    # the newest aligned end moved on, that end for every series.
+    rows, ends = covering_ends(config, day, newest)
     fresh = _new_window_ends(con, config, last_day)
-    if len(fresh):
-        endset = {int(e) for e in fresh}
-        for dm, team in teams_of.items():
-            wanted["decision_maker"].setdefault(dm, set()).update(endset)
-            if team is not None:
-                wanted["team"].setdefault(team, set()).update(endset)
-        wanted["all"].setdefault(ALL_KEY, set()).update(endset)
-        first = int(fresh.min()) - length + 1
-        lo = first if lo is None else min(lo, first)
-        hi = int(fresh.max()) if hi is None else max(hi, int(fresh.max()))
-    if lo is None:
-        return RefitSummary("incremental", int(n_dirty), len(dirty), 0, 0, 0.0)
-    frame = _fetch_buckets(con, layout, (lo, hi))
+    union = np.union1d(ends, fresh).astype(np.int64)
+    con.execute("DELETE FROM dirty_buckets")
+    set_fact(con, THROUGH_BATCH, str(newest_batch))
+    if not len(union) and not len(day):
+        return RefitSummary("incremental", n_dirty, 0, 0, 0, 0.0)
+    span = [*day, *(union - length + 1), *union] if len(union) else list(day)
+    buckets = _fetch_buckets(con, layout, (int(min(span)), int(max(span))))
+    buckets, changed = _apply_delta(con, buckets, delta)
     _release_cache(con)
+    computed = _all_windows(config, buckets, union)
+    # The windows to refit per scope: the covering ends of each changed bucket in its
+    # decision-maker's, their team's and the all series; a fresh end in every series.
+    team_names, team_ix = np.unique(
+        np.array(["" if t is None else t for t in buckets.team], dtype=object).astype(str),
+        return_inverse=True,
+    )
+    no_team = np.array([t is None for t in buckets.team], dtype=bool)
+    team_ix = np.where(no_team, -1, team_ix)
+    d_ent = delta["ent"][rows]
+    every_dm = np.arange(len(buckets.keys))
+    every_team = np.unique(team_ix[team_ix >= 0])
+    wanted = {
+        "decision_maker": _pairs(buckets.keys, d_ent, ends, every_dm, fresh),
+        "team": _pairs(team_names.astype(object), team_ix[d_ent], ends, every_team, fresh),
+        "all": _pairs(
+            np.array([ALL_KEY], dtype=object), np.zeros(len(ends), np.int64), ends, [0], fresh
+        ),
+    }
     fitted = refitted = 0
-    every = build_series(frame, layout)
-    del frame
-    for scope, series in every.items():
-        ent, end, start, stop = plan_windows(config, series, wanted[scope], last_day)
-        delete_windows(con, scope, wanted[scope])
-        fitted_n, refit_n = _fit_and_write(con, config, sig, series, ent, end, start, stop)
+    for scope in SCOPES:
+        keys, wend = wanted[scope]
+        delete_windows(con, scope, keys, wend)
+        fitted_n, refit_n = _fit_and_write(con, config, sig, _wanted(computed[scope], keys, wend))
         fitted += fitted_n
         refitted += refit_n
     set_fact(con, "last_refit", utc_now().isoformat())
-    return RefitSummary("incremental", int(n_dirty), len(dirty), fitted, refitted, 0.0)
+    return RefitSummary("incremental", n_dirty, changed, fitted, refitted, 0.0)
 
 
 def _new_window_ends(con, config: Config, last_day: int) -> np.ndarray:
     """Aligned window ends after the newest stored one, up to the one covering last_day."""
-    row = con.execute("SELECT (max(window_end) - DATE '1970-01-01')::BIGINT FROM fits").fetchone()
+    row = con.execute("SELECT (max(window_end) - DATE '1970-01-01')::BIGINT FROM fits").fetchall()[
+        0
+    ]
     newest = aligned_ends(config, last_day, last_day)[-1]
     if row[0] is None or row[0] >= newest:
         return np.array([], dtype=np.int64)
@@ -298,37 +493,17 @@ def _new_window_ends(con, config: Config, last_day: int) -> np.ndarray:
 
 def _release_cache(con) -> None:
     """Make DuckDB drop the blocks it cached for the bucket SQL before the numpy stacks
-    grow: measured 1.5 GB RSS right after that SQL at 5M decisions, most of it cache.
-    A bound set before the SQL instead slowed it by ~1.5 s; the rest of the refit
-    (window deletes and inserts) needs little."""
+    grow: measured 1.5 GB RSS right after that SQL at 5M decisions, most of it cache."""
     con.execute(f"SET memory_limit = '{AFTER_SQL_MEMORY_LIMIT}'")
 
 
-def _last_day(con) -> int:
+def _last_day(con, new_days: np.ndarray) -> int:
+    """The newest bucket day, stored or about to be."""
     row = con.execute("SELECT (max(day) - DATE '1970-01-01')::BIGINT FROM bucket_stats").fetchall()[
         0
     ]
-    return int(row[0]) if row[0] is not None else 0
-
-
-def _fetch_buckets(
-    con, layout: MomentLayout, day_range: tuple[int, int] | None, source: str = "bucket_stats"
-) -> dict[str, np.ndarray]:
-    cols = ", ".join(layout.columns())
-    where = ""
-    params: list = []
-    if day_range is not None:
-        where = "WHERE day BETWEEN ? AND ?"
-        params = [from_day_number(day_range[0]), from_day_number(day_range[1])]
-    res = con.execute(
-        f"SELECT decision_maker, team, (day - DATE '1970-01-01')::BIGINT AS day_number, {cols} "
-        f"FROM {source} {where} ORDER BY decision_maker, day",
-        params,
-    ).fetchnumpy()
-    return {
-        k: (v.filled(np.nan) if hasattr(v, "filled") and v.dtype.kind == "f" else np.asarray(v))
-        for k, v in res.items()
-    }
+    stored = int(row[0]) if row[0] is not None else 0
+    return max(stored, int(new_days.max())) if len(new_days) else stored
 
 
 def _raw_rows_loader(con, config: Config):
@@ -357,36 +532,15 @@ def _raw_rows_loader(con, config: Config):
     return load
 
 
-def _fit_and_write(con, config, sig, series: Series, ent, end, start, stop) -> tuple[int, int]:
-    if not len(ent):
-        return 0, 0
-    merged = window_moments(config, series, ent, end)
-    loader = _raw_rows_loader(con, config)
-    fits, method = fit_series(config, series, ent, end, start, stop, loader, merged)
-    keys = series.keys[ent].astype(str)
-    teams = keys if series.scope == "team" else series.teams[ent]
-    fit_rows, cue_rows = fit_tables(
-        series.scope, keys, teams, end, config.windows.length_days, fits, method, merged[0], sig
-    )
-    insert_arrow(con, "fits", fit_rows)
-    insert_arrow(con, "cue_weights", cue_rows)
-    return len(ent), int((method == "qr").sum())
-
-
 __all__ = [
     "ALL_KEY",
     "CUE_FIELDS",
     "EPOCH",
     "FIT_FIELDS",
-    "Series",
-    "WindowPlan",
     "aligned_ends",
-    "build_series",
     "day_number",
     "from_day_number",
-    "plan_windows",
     "read_fits",
     "refit",
     "sql_literal",
-    "window_moments",
 ]

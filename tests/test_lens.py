@@ -22,7 +22,6 @@ from monitor.lens import (
     moments_from_rows,
     replace_rows,
     stack,
-    window_sums,
 )
 
 NAMES3 = ("a", "b", "c")
@@ -301,55 +300,6 @@ def test_merge_in_any_order_or_grouping_equals_rows_of_concatenation():
         np.testing.assert_allclose(got.n, ref.n)
         np.testing.assert_allclose(got.mean, ref.mean, rtol=1e-13)
         np.testing.assert_allclose(got.comoment, ref.comoment, rtol=1e-11, atol=1e-9)
-
-
-def _bucket_rows(rng, count, shift):
-    rows = []
-    for _ in range(count):
-        r = rng.normal(size=(int(rng.integers(0, 25)), 4)) + shift
-        r[:, 3] = r[:, :3] @ [1.0, 2.0, -1.0] + rng.normal(size=r.shape[0])
-        rows.append(r)
-    return rows
-
-
-def test_window_sums_keep_digits_with_large_cue_means():
-    rng = np.random.default_rng(9)
-    # Cues with mean 1e4 and sd 1 (common practice stress case for naive sums).
-    rows = _bucket_rows(rng, 300, np.array([1e4, -1e4, 1e4, 0.0]))
-    buckets = _stack_moments([moments_from_rows(r) for r in rows])
-    starts = rng.integers(0, 260, size=120)
-    stops = starts + rng.integers(1, 40, size=120)
-    got = window_sums(buckets, starts, stops)
-    # Naive power sums over the same ranges, to show the data are hard enough.
-    s1 = np.cumsum(np.concatenate([np.zeros((1, 4)), buckets.n[:, None] * buckets.mean]), 0)
-    outer = buckets.mean[:, :, None] * buckets.mean[:, None, :]
-    s2 = np.concatenate([np.zeros((1, 4, 4)), buckets.comoment + buckets.n[:, None, None] * outer])
-    s2 = np.cumsum(s2, axis=0)
-    naive_err = []
-    for w, (a, b) in enumerate(zip(starts, stops, strict=True)):
-        ref = moments_from_rows(np.concatenate(rows[a:b]))  # reference: rows directly
-        scale = np.abs(ref.comoment[0]).max()
-        assert got.n[w] == ref.n[0]
-        np.testing.assert_allclose(got.mean[w], ref.mean[0], rtol=1e-14)
-        np.testing.assert_allclose(got.comoment[w], ref.comoment[0], rtol=0, atol=1e-12 * scale)
-        n = ref.n[0]
-        if n < 2:
-            continue
-        naive = (s2[b] - s2[a]) - np.outer(s1[b] - s1[a], s1[b] - s1[a]) / n
-        naive_err.append(np.abs(naive - ref.comoment[0]).max() / scale)
-    assert max(naive_err) > 1e-9  # naive sums do lose the digits on these data
-
-
-def test_window_sums_empty_ranges_and_single_buckets():
-    rng = np.random.default_rng(10)
-    rows = _bucket_rows(rng, 7, np.zeros(4))
-    buckets = _stack_moments([moments_from_rows(r) for r in rows])
-    got = window_sums(buckets, np.array([0, 3, 5, 0]), np.array([0, 4, 5, 7]))
-    assert got.n[0] == 0 and got.n[2] == 0
-    np.testing.assert_allclose(got.comoment[0], 0.0)
-    np.testing.assert_allclose(got.comoment[1], buckets.comoment[3], rtol=1e-14)
-    ref = moments_from_rows(np.concatenate(rows))
-    np.testing.assert_allclose(got.comoment[3], ref.comoment[0], rtol=1e-12, atol=1e-12)
 
 
 # --------------------------------------------------------------------------- degenerate

@@ -1,9 +1,11 @@
 """Specification of the vectorised pieces behind the refit: pooling bucket statistics
-into groups (``monitor.moments.group_sums``) and the window ends covering a day
-(``monitor.window_plan.covering_ends``).
+into groups (``monitor.moments.group_sums``), the window ends covering a day
+(``monitor.window_plan.covering_ends``) and the window sums of stored bucket parts
+(``monitor.window_plan.window_sums`` with ``moments_sql.StatLayout.finish``).
 
-References: numpy's ``np.cov`` on the pooled raw rows (outside the project) and a
-brute-force enumeration of aligned window ends written out here (common practice).
+References: numpy's ``np.cov`` on the pooled raw rows (outside the project), the
+two-pass statistics of the window's raw rows, and a brute-force enumeration of
+aligned window ends written out here (common practice).
 """
 
 from __future__ import annotations
@@ -11,6 +13,7 @@ from __future__ import annotations
 from datetime import date
 
 import numpy as np
+import pytest
 
 from monitor.config import Config
 from monitor.moments import Moments, group_sums, moments_from_rows
@@ -77,3 +80,91 @@ def test_covering_ends_match_a_brute_force_enumeration():
         if d <= e <= d + 29 and e <= newest
     }
     assert got == want
+
+
+# --------------------------------------------------------------------------- window sums
+
+
+def _parts(rows: np.ndarray, shift: np.ndarray) -> np.ndarray:
+    """One bucket part in the stored layout (``StatLayout``): count, sums of the shifted
+    values and the upper triangle of their product sums - written out here from the
+    layout's definition, independently of the store's SQL."""
+    u = rows - shift
+    p = u.shape[1]
+    tri = [float(u[:, i] @ u[:, j]) for i in range(p) for j in range(i, p)]
+    return np.array([float(len(u)), *u.sum(axis=0), *tri])
+
+
+def _log(rng: np.random.Generator):
+    """Rows (x1, x2, ys, ye-or-NaN) of 3 decision-makers on random days, with a cue of
+    mean 1e4 and sd ~1 (common practice stress case for plain sums) and a 0/1 cue that
+    is constant within some buckets."""
+    rows = []
+    for ent in range(3):
+        for day in np.sort(rng.choice(np.arange(1000, 1400), size=150, replace=False)):
+            n = int(rng.integers(1, 6))
+            x = np.column_stack([1e4 + rng.normal(size=n), rng.integers(0, 2, size=n) * 1.0])
+            ys = x @ [0.5, 2.0] + rng.normal(size=n)
+            ye = np.where(rng.random(n) < 0.6, rng.normal(size=n) + ys, np.nan)
+            rows.append((ent, int(day), np.column_stack([x, ys, ye])))
+    return rows
+
+
+def test_window_sums_equal_the_statistics_of_the_raw_rows():
+    from monitor.moments_sql import StatLayout
+    from monitor.window_plan import window_sums
+
+    rng = np.random.default_rng(8)
+    layout = StatLayout(2)
+    log = _log(rng)
+    shift = np.array([[1e4, 0.5, 5000.0, 5000.0]] * 3)  # near the means, as in the store
+    ent, day, linked, sums = [], [], [], []
+    for e, d, z in log:
+        for flag in (False, True):
+            rows = z[~np.isnan(z[:, 3]) == flag].copy()
+            if len(rows):
+                rows[:, 3] = np.nan_to_num(rows[:, 3], nan=shift[e, 3])  # unlinked: u = 0
+                ent.append(e), day.append(d), linked.append(flag)
+                sums.append(_parts(rows, shift[e]))
+    ent, day, linked, sums = map(np.array, (ent, day, linked, sums))
+    win_ent = np.repeat(np.arange(3), 62)
+    win_end = np.tile(np.arange(990, 1424, 7), 3)
+    got = window_sums(ent, day, linked, sums, win_ent, win_end, 90)
+    all_rows, linked_w = layout.finish(got, shift[win_ent])
+    for w, (e, end) in enumerate(zip(win_ent, win_end, strict=True)):
+        z = [r for ee, d, r in log if ee == e and end - 89 <= d <= end]
+        if not z:
+            assert layout.count(got[w : w + 1])[0] == 0
+            continue
+        z = np.vstack(z)
+        # Reference: the two-pass statistics of the window's raw rows (numpy).
+        for mine, ref in ((all_rows, moments_from_rows(z[:, :3])),
+                          (linked_w, moments_from_rows(z[~np.isnan(z[:, 3])]))):  # fmt: skip
+            scale = np.sqrt(np.outer(np.diag(ref.comoment[0]), np.diag(ref.comoment[0])))
+            assert mine.n[w] == ref.n[0]
+            np.testing.assert_allclose(mine.mean[w], ref.mean[0], rtol=1e-14, atol=1e-12)
+            # A cue with mean 1e4 and sd 1 carries ~1e-12 rounding in its input values.
+            assert np.all(np.abs(mine.comoment[w] - ref.comoment[0]) <= 1e-10 * scale + 1e-12)
+    # Windows do not depend on the days loaded outside them: with only the days from
+    # 1200 on, the windows starting there are identical to the last bit.
+    late = day >= 1200
+    part = window_sums(ent[late], day[late], linked[late], sums[late], win_ent, win_end, 90)
+    inside = win_end - 89 >= 1200
+    assert inside.sum() > 20
+    assert np.array_equal(part[inside], got[inside])
+
+
+def test_window_sums_keep_a_constant_cue_exactly_constant():
+    from monitor.moments_sql import StatLayout
+    from monitor.window_plan import window_sums
+
+    layout = StatLayout(1)
+    rng = np.random.default_rng(3)
+    # The cue is 0.3 on every row (not representable in binary) and the shift differs.
+    sums = [_parts(np.column_stack([np.full(4, 0.3), rng.normal(size=4), rng.normal(size=4)]),
+                   np.array([0.25, 0.0, 0.0])) for _ in range(30)]  # fmt: skip
+    got = window_sums(np.zeros(30), np.arange(30) + 700, np.ones(30, bool), np.array(sums),
+                      np.array([0]), np.array([729]), 90)  # fmt: skip
+    all_rows, linked = layout.finish(got, np.array([[0.25, 0.0, 0.0]]))
+    assert all_rows.comoment[0, 0, 0] == 0.0 and linked.comoment[0, 0, 0] == 0.0
+    assert all_rows.mean[0, 0] == pytest.approx(0.3, rel=1e-15)
