@@ -140,13 +140,21 @@ def add_nightly(cfg_path: Path, rows_total: int, days: int, makers: int, share: 
                           "judgment", "batch_id", "ingested_at", "source_line",
                           *[f"x{j}" for j in range(K)]])  # fmt: skip
         new_first = per_day * days
+        # Fresh batch ids, as ingest's sequence would give: the refit picks up the
+        # batches after the last one it saw.
+        top = con.execute(
+            "SELECT greatest((SELECT max(batch_id) FROM decisions), "
+            "(SELECT max(batch_id) FROM outcomes))"
+        ).fetchone()[0]
+        dec_batch, out_batch = top + 1, top + 2
         con.execute(
-            f"INSERT INTO decisions ({cols}) {_decision_select(new_first, per_day, 1, makers, 3)}"
+            f"INSERT INTO decisions ({cols}) "
+            f"{_decision_select(new_first, per_day, 1, makers, dec_batch)}"
         )
         stamp = "now()"
         con.execute(
             f"INSERT INTO dirty_buckets SELECT DISTINCT decision_maker, decided_day, {stamp} "
-            "FROM decisions WHERE batch_id = 3"
+            f"FROM decisions WHERE batch_id = {dec_batch}"
         )
         late = int(share * rows_total)
         last = START + timedelta(days=days - 1)
@@ -156,7 +164,9 @@ def add_nightly(cfg_path: Path, rows_total: int, days: int, makers: int, share: 
             f"WHERE d.decided_day > DATE '{last.isoformat()}' - INTERVAL 180 DAY "
             f"AND d.batch_id = 1 ORDER BY random() LIMIT {late}"
         )
-        con.execute("INSERT INTO outcomes SELECT decision_id, now(), ye, 4, now(), 0 FROM late")
+        con.execute(
+            f"INSERT INTO outcomes SELECT decision_id, now(), ye, {out_batch}, now(), 0 FROM late"
+        )
         con.execute(
             f"INSERT INTO dirty_buckets SELECT DISTINCT decision_maker, decided_day, {stamp} "
             "FROM late"

@@ -1,11 +1,13 @@
 """Sufficient statistics of the judgment log computed inside DuckDB.
 
 Per (decision-maker, day) bucket the store keeps two statistic sets over the model
-vector z = (x_1 .. x_k, Ys[, Ye]) as one fixed-size array of *shifted sums*
-(``StatLayout``):
+vector z = (x_1 .. x_k, Ys, Ye), each as one fixed-size array of *shifted sums*
+(``StatLayout``) in its own ``bucket_stats`` row:
 
-* ``all``    - every row: count, sums of (z - c) and of (z_i - c_i)(z_j - c_j) over (x, Ys);
-* ``linked`` - rows with an outcome: the same over (x, Ys, Ye).
+* all rows (``linked_only`` false): count, sums of (z - c) and of (z_i - c_i)(z_j - c_j),
+  with the criterion entries 0;
+* outcome-linked rows (``linked_only`` true): the same over the rows with a current
+  outcome.
 
 Why this shape: plain sums of cross-products lose digits when cues have large means
 (an amount in pounds, a date).  Each row is shifted by a per-decision-maker reference
@@ -117,13 +119,13 @@ def current_outcome_sql(as_of: str | None = None, decision_filter: str | None = 
 class StatLayout:
     """Positions inside the statistics arrays of one bucket.
 
-    The store keeps each (decision-maker, day) bucket as up to two *parts*, rows
-    without an outcome (``linked`` false) and rows with one: a part's array
-    (``bucket_stats.sums``) is ``[n, s (p), q (upper triangle, row-major)]`` over
-    p = k + 2 variables (design columns, judgment, criterion - 0 when unlinked), with
-    s sums of the shifted values z - c and q sums of their products.  In memory a
-    bucket or window is the two parts side by side (``width``); ``finish`` makes the
-    all-rows set (both parts, criterion dropped) and the linked set (the second part).
+    The store keeps each (decision-maker, day) bucket as two rows of sums
+    (``bucket_stats.sums``), one over all the day's decisions and one over those with a
+    current outcome (``linked_only``).  Each is ``[n, s (p), q (upper triangle,
+    row-major)]`` over p = k + 2 variables (design columns, judgment, criterion), with
+    s sums of the shifted values z - c and q sums of their products; in the all-rows
+    set the criterion entries are 0.  In memory a bucket or window is the two side by
+    side (``width``); ``finish`` makes Moments of both sets.
     """
 
     k: int
@@ -137,37 +139,35 @@ class StatLayout:
         return self.k + 2
 
     @property
-    def part_width(self) -> int:
+    def set_width(self) -> int:
         p = self.p_linked
         return 1 + p + p * (p + 1) // 2
 
     @property
     def width(self) -> int:
-        return 2 * self.part_width
+        return 2 * self.set_width
 
-    def all_from_part(self) -> np.ndarray:
-        """Indices of a part's entries that form the all-rows set (criterion dropped)."""
+    def all_entries(self) -> np.ndarray:
+        """Indices of a row's entries that are not about the criterion."""
         pl, pa = self.p_linked, self.p_all
         tri = [1 + pl + at for at, (i, j) in enumerate(_pairs(pl)) if j < pa]
         return np.array([0, *range(1, 1 + pa), *tri], dtype=np.intp)
 
     def count(self, sums: np.ndarray) -> np.ndarray:
-        """Rows counted in each (m, width) array: both parts."""
-        return sums[:, 0] + sums[:, self.part_width]
+        """Rows counted in each (m, width) array (all rows)."""
+        return sums[:, 0]
 
     def finish(self, sums: np.ndarray, shift: np.ndarray) -> tuple[Moments, Moments]:
-        """(all rows, linked rows) Moments from (m, width) sums of the two parts and
-        each row's shift (m, p_linked).  ``sums`` is left untouched."""
-        pw = self.part_width
-        pick = self.all_from_part()
-        both = sums[:, :pw][:, pick] + sums[:, pw:][:, pick]
+        """(all rows, linked rows) Moments from (m, width) sums of the two sets and each
+        row's shift (m, p_linked).  ``sums`` is left untouched."""
+        pw = self.set_width
         return (
-            _finish_part(both, self.p_all, shift),
-            _finish_part(sums[:, pw:], self.p_linked, shift),
+            _finish_set(sums[:, :pw][:, self.all_entries()], self.p_all, shift),
+            _finish_set(sums[:, pw:], self.p_linked, shift),
         )
 
 
-def _finish_part(part: np.ndarray, p: int, shift: np.ndarray) -> Moments:
+def _finish_set(part: np.ndarray, p: int, shift: np.ndarray) -> Moments:
     n = part[:, 0].copy()
     s = part[:, 1 : 1 + p]
     slot = np.empty((p, p), dtype=np.intp)
@@ -218,49 +218,63 @@ def _shifted_rows(config: Config, rows: str, extra: str = "") -> str:
     )
 
 
-def part_sql(config: Config) -> str:
-    """Every stored decision's bucket statistics in two parts per (decision_maker, day):
-    ``linked`` false (no outcome) and true.  Returns decision_maker, day, linked, team
-    (max) and ``sums`` DOUBLE[part_width].
+def _sums(p: int, weight: str = "", with_criterion: bool = True) -> str:
+    """The array expression of one set's statistics over shifted values u0..u(p-1):
+    count, sums and the upper triangle of product sums, each multiplied by ``weight``
+    (e.g. "w * ").  Without the criterion its entries are the literal 0 (its u is 0)."""
+    ye = p - 1
 
-    One pass of plain sums per (key, linked) part: FILTERed aggregates cost about three
-    times as much in DuckDB; numpy adds the two parts into the all-rows set.  Plain
+    def term(expr: str, *idx: int) -> str:
+        return "0.0" if not with_criterion and ye in idx else f"sum({weight}{expr})"
+
+    count = f"sum({weight.rstrip(' *')})" if weight else "count(*)::DOUBLE"
+    sums = [count] + [term(f"u{i}", i) for i in range(p)]
+    sums += [term(f"u{i} * u{j}", i, j) for i, j in _pairs(p)]
+    return f"[{', '.join(sums)}]::DOUBLE[{len(sums)}]"
+
+
+def full_sql(config: Config) -> str:
+    """Every stored decision's bucket statistics: per (decision_maker, day) one row with
+    ``linked_only`` false (all the day's decisions; criterion entries 0) and one with
+    ``linked_only`` true (the decisions with a current outcome).  Returns
+    decision_maker, day, linked_only, team (max) and ``sums`` DOUBLE[set_width].
+
+    The all-rows set needs no outcome: it is summed from the decisions alone, and only
+    the linked set joins the current outcomes (an inner join over the outcomes).  Plain
     ``sum``, not ``fsum``: the rows are shifted to near zero first and the thread-count
     test (1 vs 4 threads, 1e-12 relative) holds with it."""
-    k = len(config.design_columns())
-    p = k + 2
-    rows = (
-        "SELECT d.*, d.decided_day AS _bday, o.criterion AS _crit FROM decisions d "
-        f"LEFT JOIN ({current_outcome_sql()}) o USING (decision_id) "
-        f"WHERE {_cues_present(config)}"
+    p = len(config.design_columns()) + 2
+    present = _cues_present(config)
+    every = f"SELECT d.*, d.decided_day AS _bday, NULL::DOUBLE AS _crit FROM decisions d WHERE {present}"
+    linked = (
+        "SELECT d.*, d.decided_day AS _bday, o.criterion AS _crit "
+        f"FROM ({current_outcome_sql()}) o JOIN decisions d USING (decision_id) WHERE {present}"
     )
-    sums = ["count(*)::DOUBLE"] + [f"sum(u{i})" for i in range(p)]
-    sums += [f"sum(u{i} * u{j})" for i, j in _pairs(p)]
-    shifted = _shifted_rows(config, rows, extra="r._crit IS NOT NULL AS linked, ")
     return (
-        f"SELECT decision_maker, day, linked, max(team) AS team, "
-        f"[{', '.join(sums)}]::DOUBLE[{len(sums)}] AS sums FROM ({shifted}) "
-        "GROUP BY decision_maker, day, linked"
+        f"SELECT decision_maker, day, false AS linked_only, max(team) AS team, "
+        f"{_sums(p, with_criterion=False)} AS sums FROM ({_shifted_rows(config, every)}) "
+        "GROUP BY decision_maker, day UNION ALL "
+        f"SELECT decision_maker, day, true, max(team), {_sums(p)} "
+        f"FROM ({_shifted_rows(config, linked)}) GROUP BY decision_maker, day"
     )
 
 
 def delta_sql(config: Config, through_batch: int, day_range: tuple | None) -> str:
-    """What the batches after ``through_batch`` add to the stored bucket parts:
-    decision_maker, day, linked, team (max) and ``sums`` DOUBLE[part_width] per touched
-    part, as signed sums.
+    """What the batches after ``through_batch`` add to the stored bucket statistics:
+    decision_maker, day, linked_only, team (max) and ``sums`` DOUBLE[set_width] per
+    touched row, as signed sums.
 
-    * a new decision adds its row to its bucket's linked part if it has an outcome (one
-      that came with it or earlier), else to the unlinked part;
+    * a new decision adds its row to its bucket's all-rows set, and to the linked set
+      if it has an outcome (one that came with it or earlier);
     * an older decision whose current outcome changed adds its row with the new
-      criterion to the linked part and takes out the row it had: from the linked part
-      with the criterion it had, or from the unlinked part.
+      criterion to the linked set and takes out the row with the criterion it had (if
+      it had one); its all-rows set does not change.
 
     ``day_range`` (first, last day of the touched buckets, from ``dirty_buckets``)
     lets DuckDB skip the row groups of older decisions when looking up the decisions
     of new outcomes: the lookup then costs the same whatever the length of history.
     """
-    k = len(config.design_columns())
-    p = k + 2
+    p = len(config.design_columns()) + 2
     b = int(through_batch)
     present = _cues_present(config)
     in_range = "TRUE"
@@ -282,21 +296,20 @@ def delta_sql(config: Config, through_batch: int, day_range: tuple | None) -> st
     now_cur = current_outcome_sql(decision_filter=history)
     was_cur = current_outcome_sql(decision_filter=f"{history} AND batch_id <= {b}")
     rows = (
-        f"SELECT {cols}, o.criterion AS _crit, 1.0 AS w "
-        f"FROM _new_dec d LEFT JOIN ({new_out}) o USING (decision_id) "
-        f"UNION ALL SELECT {cols}, o.criterion, 1.0 "
+        f"SELECT {cols}, NULL::DOUBLE AS _crit, false AS linked_only, 1.0 AS w FROM _new_dec d "
+        f"UNION ALL SELECT {cols}, o.criterion, true, 1.0 "
+        f"FROM _new_dec d JOIN ({new_out}) o USING (decision_id) "
+        f"UNION ALL SELECT {cols}, o.criterion, true, 1.0 "
         f"FROM _old_dec d JOIN ({now_cur}) o USING (decision_id) "
-        f"UNION ALL SELECT {cols}, o.criterion, -1.0 "
-        f"FROM _old_dec d LEFT JOIN ({was_cur}) o USING (decision_id)"
+        f"UNION ALL SELECT {cols}, o.criterion, true, -1.0 "
+        f"FROM _old_dec d JOIN ({was_cur}) o USING (decision_id)"
     )
-    shifted = _shifted_rows(config, rows, extra="r._crit IS NOT NULL AS linked, r.w, ")
-    sums = ["sum(w)"] + [f"sum(w * u{i})" for i in range(p)]
-    sums += [f"sum(w * u{i} * u{j})" for i, j in _pairs(p)]
+    shifted = _shifted_rows(config, rows, extra="r.linked_only, r.w, ")
     return (
         f"WITH _new_dec AS ({new_dec}), _old_dec AS ({old_dec}) "
-        f"SELECT decision_maker, day, linked, max(team) AS team, "
-        f"[{', '.join(sums)}]::DOUBLE[{len(sums)}] AS sums FROM ({shifted}) "
-        "GROUP BY decision_maker, day, linked"
+        f"SELECT decision_maker, day, linked_only, max(team) AS team, "
+        f"{_sums(p, weight='w * ')} AS sums FROM ({shifted}) "
+        "GROUP BY decision_maker, day, linked_only"
     )
 
 

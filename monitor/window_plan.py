@@ -61,12 +61,12 @@ def covering_ends(config: Config, days: np.ndarray, newest: int) -> tuple[np.nda
 
 @dataclass
 class Buckets:
-    """Bucket parts of several decision-makers (any order) as held in memory.
+    """Stored bucket rows of several decision-makers (any order) as held in memory.
 
     keys: (e,) decision-maker ids; shift: (e, p_linked) their shifts; team: (e,) the
     team on each one's latest bucket; ent, day, linked: (b,) decision-maker index, day
-    number and part (rows with an outcome or not) per stored part; part_team: (b,) the
-    part's team; sums: (b, part_width) its shifted sums (``StatLayout``).
+    number and set (True: the outcome-linked rows, False: all rows) per stored row;
+    row_team: (b,) its team; sums: (b, set_width) its shifted sums (``StatLayout``).
     """
 
     keys: np.ndarray
@@ -75,14 +75,14 @@ class Buckets:
     ent: np.ndarray
     day: np.ndarray
     linked: np.ndarray
-    part_team: np.ndarray
+    row_team: np.ndarray
     sums: np.ndarray
 
 
 def latest_teams(
     n_keys: int, ent: np.ndarray, day: np.ndarray, team: np.ndarray, rank: np.ndarray
 ) -> np.ndarray:
-    """Each entity's team on its latest bucket, the greatest if its parts differ (None
+    """Each entity's team on its latest bucket, the greatest if its two rows differ (None
     for an entity without buckets).  rank: the teams' sort order (-1 for None)."""
     out = np.full(n_keys, None, dtype=object)
     order = np.lexsort((rank, day, ent))
@@ -103,10 +103,10 @@ def window_sums(
     win_end: np.ndarray,
     length: int,
 ) -> np.ndarray:
-    """Plain sums of the bucket parts over each window ``[end - length + 1, end]`` of
-    entity ``win_ent``: (m, 2 * part_width), the unlinked parts' sums then the linked
-    parts'.  Parts may come in any order, at most one per (entity, day, linked); only
-    parts inside a window count.
+    """Plain sums of the bucket rows over each window ``[end - length + 1, end]`` of
+    entity ``win_ent``: (m, 2 * set_width), the all-rows sets' sums then the linked
+    sets'.  Rows may come in any order, at most one per (entity, day, linked); only
+    rows inside a window count.
 
     Days are cut into blocks of ``length`` days (``day // length``), so a window is the
     tail of one block plus the head of the next (or exactly one block).  On a dense

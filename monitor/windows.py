@@ -34,8 +34,8 @@ from monitor.moments_sql import (
     StatLayout,
     delta_sql,
     design_expressions,
+    full_sql,
     new_shift_sql,
-    part_sql,
     shift_select,
 )
 from monitor.store import Store, get_fact, quote_ident, set_fact, sql_literal, utc_now
@@ -91,7 +91,7 @@ def _create_bucket_tables(con, layout: StatLayout) -> None:
     )
     con.execute(
         "CREATE TABLE bucket_stats (decision_maker VARCHAR NOT NULL, day DATE NOT NULL, "
-        f"linked BOOLEAN NOT NULL, team VARCHAR, sums DOUBLE[{layout.part_width}] NOT NULL)"
+        f"linked_only BOOLEAN NOT NULL, team VARCHAR, sums DOUBLE[{layout.set_width}] NOT NULL)"
     )
 
 
@@ -125,11 +125,11 @@ def _strings(arrow_column) -> tuple[np.ndarray, np.ndarray]:
     return text, rank[index]
 
 
-def _fetch_parts(con, layout: StatLayout, sql: str) -> dict[str, np.ndarray]:
-    """Run a query returning (decision_maker, day, linked, team, sums) and fetch it with
+def _fetch_rows(con, layout: StatLayout, sql: str) -> dict[str, np.ndarray]:
+    """Run a query returning (decision_maker, day, linked_only, team, sums) and fetch it with
     decision-makers as numbers (``_NUMBERED``)."""
     table = con.sql(
-        "SELECT k.ent, (b.day - DATE '1970-01-01')::INTEGER AS day, b.linked, b.team, b.sums "
+        "SELECT k.ent, (b.day - DATE '1970-01-01')::INTEGER AS day, b.linked_only, b.team, b.sums "
         f"FROM ({sql}) b JOIN {_NUMBERED} k USING (decision_maker)"
     ).to_arrow_table()
     return {
@@ -137,44 +137,44 @@ def _fetch_parts(con, layout: StatLayout, sql: str) -> dict[str, np.ndarray]:
         "day": table.column(1).to_numpy().astype(np.int64),
         "linked": table.column(2).to_numpy(zero_copy_only=False).astype(bool),
         **dict(zip(("team", "team_code"), _strings(table.column(3)), strict=True)),
-        "sums": _array_rows(table.column(4), layout.part_width),
+        "sums": _array_rows(table.column(4), layout.set_width),
     }
 
 
 def _fetch_buckets(con, layout: StatLayout, day_range: tuple[int, int] | None) -> Buckets:
-    """The stored bucket parts (of the days in ``day_range``, or all) with every
+    """The stored bucket rows (of the days in ``day_range``, or all) with every
     decision-maker's id and shift."""
     where = ""
     if day_range is not None:
         lo, hi = (from_day_number(d).isoformat() for d in day_range)
         where = f"WHERE day BETWEEN DATE '{lo}' AND DATE '{hi}'"
-    parts = _fetch_parts(con, layout, f"SELECT * FROM bucket_stats {where}")
+    rows = _fetch_rows(con, layout, f"SELECT * FROM bucket_stats {where}")
     table = con.sql(
         "SELECT decision_maker, shift FROM bucket_shifts ORDER BY decision_maker"
     ).to_arrow_table()
     keys = np.array(table.column(0).to_pylist(), dtype=object)
     shift = _array_rows(table.column(1), layout.p_linked)
-    teams = latest_teams(len(keys), parts["ent"], parts["day"], parts["team"], parts["team_code"])
+    teams = latest_teams(len(keys), rows["ent"], rows["day"], rows["team"], rows["team_code"])
     return Buckets(
         keys,
         shift,
         teams,
-        parts["ent"],
-        parts["day"],
-        parts["linked"],
-        parts["team"],
-        parts["sums"],
+        rows["ent"],
+        rows["day"],
+        rows["linked"],
+        rows["team"],
+        rows["sums"],
     )
 
 
-def _write_parts(con, keys: np.ndarray, ent, day, linked, team, sums) -> None:
+def _write_rows(con, keys: np.ndarray, ent, day, linked, team, sums) -> None:
     width = sums.shape[1]
     values = pa.array(np.ascontiguousarray(sums, dtype=float).ravel())
     data = pa.table(
         {
             "decision_maker": pa.array(list(keys[ent]), pa.string()),
             "day": pa.array(np.asarray(day, dtype=np.int32), pa.int32()).cast(pa.date32()),
-            "linked": pa.array(np.asarray(linked, dtype=bool)),
+            "linked_only": pa.array(np.asarray(linked, dtype=bool)),
             "team": pa.array(list(team), pa.string()),
             "sums": pa.FixedSizeListArray.from_arrays(values, width),
         }
@@ -337,7 +337,9 @@ def _refit_full(con, config: Config, sig: str) -> RefitSummary:
     _create_bucket_tables(con, layout)
     con.execute(f"INSERT INTO bucket_shifts {shift_select(config, 'TRUE')}")
     # In day order, for the same reason as the fits (``_fit_and_write``).
-    con.execute(f"INSERT INTO bucket_stats {part_sql(config)} ORDER BY day, decision_maker, linked")
+    con.execute(
+        f"INSERT INTO bucket_stats {full_sql(config)} ORDER BY day, decision_maker, linked_only"
+    )
     con.execute("DELETE FROM dirty_buckets")
     con.execute("DELETE FROM fits")
     con.execute("DELETE FROM cue_weights")
@@ -360,13 +362,13 @@ def _refit_full(con, config: Config, sig: str) -> RefitSummary:
 def _fetch_delta(con, config: Config, layout: StatLayout, through: int) -> dict[str, np.ndarray]:
     row = con.execute("SELECT min(day), max(day) FROM dirty_buckets").fetchall()[0]
     day_range = None if row[0] is None else (row[0], row[1])
-    return _fetch_parts(con, layout, delta_sql(config, through, day_range))
+    return _fetch_rows(con, layout, delta_sql(config, through, day_range))
 
 
 def _apply_delta(con, buckets: Buckets, delta: dict[str, np.ndarray]) -> tuple[Buckets, int]:
-    """Add the delta parts to the fetched ones (new parts appended), write the changed
-    parts back to the store; returns the updated frame and the number of changed
-    buckets.  ``buckets`` must hold every stored part of the delta's days."""
+    """Add the delta rows to the fetched ones (new rows appended), write the changed
+    rows back to the store; returns the updated frame and the number of changed
+    buckets.  ``buckets`` must hold every stored row of the delta's days."""
 
     def code(ent, day, linked):
         return (ent * (1 << 20) + day) * 2 + linked
@@ -381,10 +383,10 @@ def _apply_delta(con, buckets: Buckets, delta: dict[str, np.ndarray]) -> tuple[B
         pos_c = np.minimum(pos, len(have) - 1)
         found = have[order][pos_c] == want
         at = order[pos_c]
-    sums, team = buckets.sums, buckets.part_team
+    sums, team = buckets.sums, buckets.row_team
     hit = np.flatnonzero(found)
     sums[at[hit]] += delta["sums"][hit]
-    # A part's team is the max over its rows: only parts whose new rows carry another
+    # A stored row's team is the max over its decisions: only rows whose news carry another
     # team than the stored one need a look.
     differ = hit[delta["team"][hit] != team[at[hit]]]
     for i, j in zip(at[differ], differ, strict=True):
@@ -403,18 +405,18 @@ def _apply_delta(con, buckets: Buckets, delta: dict[str, np.ndarray]) -> tuple[B
         {
             "decision_maker": pa.array(list(buckets.keys[ent[changed]]), pa.string()),
             "day": pa.array(day[changed].astype(np.int32), pa.int32()).cast(pa.date32()),
-            "linked": pa.array(linked[changed]),
+            "linked_only": pa.array(linked[changed]),
         }
     )
-    con.register("_changed_parts", gone)
+    con.register("_changed_rows", gone)
     try:
         con.execute(
-            "DELETE FROM bucket_stats b USING _changed_parts c WHERE b.decision_maker = "
-            "c.decision_maker AND b.day = c.day AND b.linked = c.linked"
+            "DELETE FROM bucket_stats b USING _changed_rows c WHERE b.decision_maker = "
+            "c.decision_maker AND b.day = c.day AND b.linked_only = c.linked_only"
         )
     finally:
-        con.unregister("_changed_parts")
-    _write_parts(
+        con.unregister("_changed_rows")
+    _write_rows(
         con, buckets.keys, ent[changed], day[changed], linked[changed], team[changed], sums[changed]
     )
     codes = _strings(pa.chunked_array([pa.array(list(team), pa.string())]))[1]

@@ -86,7 +86,7 @@ def test_covering_ends_match_a_brute_force_enumeration():
 
 
 def _parts(rows: np.ndarray, shift: np.ndarray) -> np.ndarray:
-    """One bucket part in the stored layout (``StatLayout``): count, sums of the shifted
+    """One bucket row in the stored layout (``StatLayout``): count, sums of the shifted
     values and the upper triangle of their product sums - written out here from the
     layout's definition, independently of the store's SQL."""
     u = rows - shift
@@ -120,10 +120,10 @@ def test_window_sums_equal_the_statistics_of_the_raw_rows():
     shift = np.array([[1e4, 0.5, 5000.0, 5000.0]] * 3)  # near the means, as in the store
     ent, day, linked, sums = [], [], [], []
     for e, d, z in log:
-        for flag in (False, True):
-            rows = z[~np.isnan(z[:, 3]) == flag].copy()
+        every = z.copy()
+        every[:, 3] = shift[e, 3]  # the all-rows set has criterion entries 0
+        for flag, rows in ((False, every), (True, z[~np.isnan(z[:, 3])])):
             if len(rows):
-                rows[:, 3] = np.nan_to_num(rows[:, 3], nan=shift[e, 3])  # unlinked: u = 0
                 ent.append(e), day.append(d), linked.append(flag)
                 sums.append(_parts(rows, shift[e]))
     ent, day, linked, sums = map(np.array, (ent, day, linked, sums))
@@ -163,8 +163,9 @@ def test_window_sums_keep_a_constant_cue_exactly_constant():
     # The cue is 0.3 on every row (not representable in binary) and the shift differs.
     sums = [_parts(np.column_stack([np.full(4, 0.3), rng.normal(size=4), rng.normal(size=4)]),
                    np.array([0.25, 0.0, 0.0])) for _ in range(30)]  # fmt: skip
-    got = window_sums(np.zeros(30), np.arange(30) + 700, np.ones(30, bool), np.array(sums),
-                      np.array([0]), np.array([729]), 90)  # fmt: skip
+    ent, day = np.zeros(60), np.tile(np.arange(30) + 700, 2)
+    linked = np.repeat([False, True], 30)  # the same rows in both sets
+    got = window_sums(ent, day, linked, np.array(sums * 2), np.array([0]), np.array([729]), 90)
     all_rows, linked = layout.finish(got, np.array([[0.25, 0.0, 0.0]]))
     assert all_rows.comoment[0, 0, 0] == 0.0 and linked.comoment[0, 0, 0] == 0.0
     assert all_rows.mean[0, 0] == pytest.approx(0.3, rel=1e-15)

@@ -285,6 +285,52 @@ def test_a_new_week_gives_every_series_its_new_window(day_by_day, tmp_path):
                         FIT_KEYS, rtol=1e-10)  # fmt: skip
 
 
+def test_outcomes_before_their_decisions_and_a_new_handler_refit_like_a_full_refit(
+    day_by_day, tmp_path
+):
+    """Outcomes ingested before their decisions (kept, linked when the decisions come),
+    decisions arriving with their outcome in the same refresh, and a handler never seen
+    before (a new bucket shift): the incremental refresh equals a full refit."""
+    cfg_path = copy_store(day_by_day["spare_cfg"], tmp_path / "early")
+    config = load_config(cfg_path)
+    # A day of decisions no store has seen (the spare day's rows under new ids; other
+    # tests may have ingested the spare file into the shared store).
+    day = day_by_day["spare"][0] + timedelta(days=1)
+    rows = pd.read_csv(day_by_day["spare"][1][0], dtype=str)
+    rows["claim_id"] = [f"EARLY{i:05d}" for i in range(len(rows))]
+    rows["scored_at"] = [f"{day.isoformat()} {t[11:]}" for t in rows["scored_at"]]
+    newcomer = rows.head(25).copy()
+    newcomer["claim_id"] = [f"NEWH{i:04d}" for i in range(len(newcomer))]
+    newcomer["handler_id"] = "H900"
+    decisions = tmp_path / f"decisions_{day.isoformat()}.csv"
+    pd.concat([rows, newcomer]).to_csv(decisions, index=False)
+    closed = f"{(day + timedelta(days=1)).isoformat()} 10:00:00"
+    early = pd.DataFrame({"claim_id": rows["claim_id"].iloc[::3], "closed_at": closed,
+                          "fraud_confirmed": "Yes"})  # fmt: skip
+    with_them = pd.DataFrame({"claim_id": newcomer["claim_id"].iloc[::2], "closed_at": closed,
+                              "fraud_confirmed": "No"})  # fmt: skip
+    first = tmp_path / "outcomes_early.csv"
+    second = tmp_path / "outcomes_with_decisions.csv"
+    early.to_csv(first, index=False)
+    with_them.to_csv(second, index=False)
+    ingest_files(config, [first])
+    assert refit(config).windows_fitted == 0  # nothing to link yet
+    ingest_files(config, [decisions, second])
+    assert refit(config).mode == "incremental"
+    linked = read_table(
+        config,
+        "SELECT n_linked FROM fits WHERE scope = 'decision_maker' AND decision_maker = 'H900'",
+    )
+    assert linked["n_linked"].tolist() == [len(with_them)]
+    full_cfg = copy_store(cfg_path, tmp_path / "early_full")
+    refit(load_config(full_cfg), full=True)
+    inc_fits, inc_cues = stored_fits(config)
+    full_fits, full_cues = stored_fits(load_config(full_cfg))
+    # Reference: the full recomputation from raw rows (refit --full), 1e-10 relative.
+    assert_same_figures(inc_fits, full_fits, FIT_KEYS, rtol=1e-10)
+    assert_same_figures(inc_cues, full_cues, CUE_KEYS, rtol=1e-10)
+
+
 def test_late_outcomes_touch_only_the_windows_covering_their_decisions(day_by_day, tmp_path):
     config = load_config(copy_store(day_by_day["spare_cfg"], tmp_path / "late"))
     old = read_table(
