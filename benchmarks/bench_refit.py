@@ -12,7 +12,10 @@ straight into a store's ``decisions`` and ``outcomes`` tables with DuckDB SQL, t
 (c) its speed against the floor query: DuckDB merely grouping the rows by
     (decision-maker, day) with 11 sums;
 (d) the nightly incremental refresh after one new day (~7,000 rows) plus late outcomes
-    for 1% of history on decisions of the last 180 days, at one and at two years;
+    for 1% of history on decisions of the last 180 days, at one and at two years (the
+    issue's case: the news double with history), and at two years with the one-year
+    case's number of late outcomes (0.5%: the same news, twice the history); each on
+    fresh copies of the refitted store, best of ``--repeat``;
 (e) the peak resident set size of the process running the full refit.
 
 Each timed refit runs in a fresh child process so its peak RSS is its own.  Results go
@@ -323,7 +326,9 @@ def naive_comparisons(db: Path, sample: int, lstsq_sample: int, seed: int = 1) -
     }
 
 
-def run(rows: int, makers: int, sample: int, lstsq_sample: int, workdir: Path) -> dict:
+def run(
+    rows: int, makers: int, sample: int, lstsq_sample: int, workdir: Path, repeat: int = 2
+) -> dict:
     days2, days1 = 730, 365
     out: dict = {"rows": rows, "decision_makers": makers, "cues": K, "days": days2}
     big = workdir / "two_years"
@@ -340,16 +345,36 @@ def run(rows: int, makers: int, sample: int, lstsq_sample: int, workdir: Path) -
     out["naive"] = naive
     out["speedup_vs_statsmodels"] = naive["statsmodels_extrapolated_s"] / full["seconds"]
     out["speedup_vs_lstsq"] = naive["lstsq_extrapolated_s"] / full["seconds"]
-    out["nightly"] = {}
-    for label, cfg, days, n in (("two_years", cfg2, days2, rows),):
-        out["nightly"][label] = {**add_nightly(cfg, n, days, makers, 0.01),
-                                 **timed_refit(cfg, full=False)}  # fmt: skip
+    out["nightly"] = nightly_runs(big, cfg2, rows, days2, makers, [0.01, 0.005], repeat)
     small = workdir / "one_year"
     small.mkdir()
     cfg1 = build_store(small, rows // 2, days1, makers)
     timed_refit(cfg1, full=True)
-    out["nightly"]["one_year"] = {**add_nightly(cfg1, rows // 2, days1, makers, 0.01),
-                                  **timed_refit(cfg1, full=False)}  # fmt: skip
+    out["nightly"].update(
+        {f"one_year_{k}": v for k, v in nightly_runs(small, cfg1, rows // 2, days1, makers,
+                                                      [0.01], repeat).items()}
+    )  # fmt: skip
+    return out
+
+
+def nightly_runs(
+    folder: Path, cfg: Path, rows: int, days: int, makers: int, shares: list[float], repeat: int
+) -> dict:
+    """The nightly refresh on fresh copies of a refitted store, once per share of late
+    outcomes (of this store's history), ``repeat`` times each; the fastest counts."""
+    out = {}
+    for share in shares:
+        best = None
+        for _ in range(repeat):
+            copy = folder.parent / f"{folder.name}_nightly"
+            shutil.rmtree(copy, ignore_errors=True)
+            shutil.copytree(folder, copy)
+            result = {**add_nightly(copy / cfg.name, rows, days, makers, share),
+                      **timed_refit(copy / cfg.name, full=False)}  # fmt: skip
+            if best is None or result["seconds"] < best["seconds"]:
+                best = result
+            shutil.rmtree(copy, ignore_errors=True)
+        out[f"late_{share:g}"] = best
     return out
 
 
@@ -361,11 +386,12 @@ def main(argv: list[str] | None = None) -> int:
     parser.add_argument("--lstsq-sample", type=int, default=2000, help="lstsq windows timed")
     parser.add_argument("--label", default="", help="suffix of the output file name")
     parser.add_argument("--keep", type=Path, help="build the stores here and keep them")
+    parser.add_argument("--repeat", type=int, default=2, help="nightly runs per case (best)")
     args = parser.parse_args(argv)
     workdir = args.keep or Path(tempfile.mkdtemp(prefix="cuewatch-bench-"))
     workdir.mkdir(parents=True, exist_ok=True)
     try:
-        result = run(args.rows, args.makers, args.sample, args.lstsq_sample, workdir)
+        result = run(args.rows, args.makers, args.sample, args.lstsq_sample, workdir, args.repeat)
     finally:
         if args.keep is None:
             shutil.rmtree(workdir, ignore_errors=True)

@@ -91,26 +91,31 @@ def group_sums(bucket: Moments, group: np.ndarray, n_groups: int) -> Moments:
     M = sum M_i + sum n_i (mean_i - mean)(mean_i - mean)^T.  Only centred statistics
     and differences of nearby means are added, so the digits do not depend on the size
     of the means; an error e in the pooled mean enters M only as n e e^T because
-    sum n_i (mean_i - mean) = 0.  The sums are one sparse (groups x buckets) product,
-    in a fixed order, so no reordered copy of the stack is made.
-    Memory: one (B, p, p) temporary.
+    sum n_i (mean_i - mean) = 0.  The sums run over each group's members in their
+    given order (``np.add.reduceat`` after a stable sort), so they do not depend on
+    how many groups there are.  Memory: two (B, p, p) temporaries.
     """
-    from scipy import sparse
-
     group = np.asarray(group, dtype=np.int64)
     size, p = bucket.size, bucket.width
     if not size:
         return empty_moments(n_groups, p)
-    member = sparse.csr_matrix((np.ones(size), (group, np.arange(size))), shape=(n_groups, size))
-    n = member @ bucket.n
+    order = np.argsort(group, kind="stable")
+    present, starts = np.unique(group[order], return_index=True)
+
+    def total(values: np.ndarray) -> np.ndarray:
+        """Per-group sums of ``values`` (rows in bucket order), zero for empty groups."""
+        out = np.zeros((n_groups, *values.shape[1:]))
+        out[present] = np.add.reduceat(values[order], starts, axis=0)
+        return out
+
+    n = total(bucket.n)
     safe = np.where(n > 0, n, 1.0)
     first = np.zeros(n_groups, dtype=np.int64)
     first[group[::-1]] = np.arange(size)[::-1]  # the first member of each group
     anchor = bucket.mean[first]
     weighted = (bucket.mean - anchor[group]) * bucket.n[:, None]
-    mean = np.where((n > 0)[:, None], anchor + (member @ weighted) / safe[:, None], 0.0)
+    mean = np.where((n > 0)[:, None], anchor + total(weighted) / safe[:, None], 0.0)
     d = bucket.mean - mean[group]
     spread = d[:, :, None] * (d * bucket.n[:, None])[:, None, :]
     spread += bucket.comoment
-    comoment = (member @ spread.reshape(size, p * p)).reshape(n_groups, p, p)
-    return Moments(n, mean, comoment)
+    return Moments(n, mean, total(spread))
