@@ -447,8 +447,8 @@ def _refit_incremental(con, config: Config, sig: str, through: int) -> RefitSumm
     set_fact(con, THROUGH_BATCH, str(newest_batch))
     if not len(union) and not len(day):
         return RefitSummary("incremental", n_dirty, 0, 0, 0, 0.0)
-    span = [*day, *(union - length + 1), *union] if len(union) else list(day)
-    buckets = _fetch_buckets(con, layout, (int(min(span)), int(max(span))))
+    span = np.concatenate([day, union - length + 1, union])
+    buckets = _fetch_buckets(con, layout, (int(span.min()), int(span.max())))
     buckets, changed = _apply_delta(con, buckets, delta)
     _release_cache(con)
     computed = _all_windows(config, buckets, union)
