@@ -281,6 +281,7 @@ def delta_sql(config: Config, through_batch: int, day_range: tuple | None) -> st
     if day_range is not None:
         lo, hi = (lit(str(d)) for d in day_range)
         in_range = f"d.decided_day BETWEEN {lo}::DATE AND {hi}::DATE"
+    # Names of our own start with "_": cue names start with a letter, so none collide.
     cols = "d.decision_maker, d.decided_day AS _bday, d.team, d.judgment, " + ", ".join(
         f"d.{qi(c)}" for c in config.cues
     )
@@ -296,7 +297,7 @@ def delta_sql(config: Config, through_batch: int, day_range: tuple | None) -> st
     now_cur = current_outcome_sql(decision_filter=history)
     was_cur = current_outcome_sql(decision_filter=f"{history} AND batch_id <= {b}")
     rows = (
-        f"SELECT {cols}, NULL::DOUBLE AS _crit, false AS linked_only, 1.0 AS w FROM _new_dec d "
+        f"SELECT {cols}, NULL::DOUBLE AS _crit, false AS _linked_only, 1.0 AS _w FROM _new_dec d "
         f"UNION ALL SELECT {cols}, o.criterion, true, 1.0 "
         f"FROM _new_dec d JOIN ({new_out}) o USING (decision_id) "
         f"UNION ALL SELECT {cols}, o.criterion, true, 1.0 "
@@ -304,7 +305,7 @@ def delta_sql(config: Config, through_batch: int, day_range: tuple | None) -> st
         f"UNION ALL SELECT {cols}, o.criterion, true, -1.0 "
         f"FROM _old_dec d JOIN ({was_cur}) o USING (decision_id)"
     )
-    shifted = _shifted_rows(config, rows, extra="r.linked_only, r.w, ")
+    shifted = _shifted_rows(config, rows, extra="r._linked_only AS linked_only, r._w AS w, ")
     return (
         f"WITH _new_dec AS ({new_dec}), _old_dec AS ({old_dec}) "
         f"SELECT decision_maker, day, linked_only, max(team) AS team, "

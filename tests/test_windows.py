@@ -514,6 +514,27 @@ def test_large_cue_means_keep_accuracy(tmp_path):
     np.testing.assert_allclose(fit["R_s"] ** 2, ref.rsquared, rtol=1e-9)
 
 
+def test_cue_names_like_the_refit_own_columns_refit_incrementally(tmp_path):
+    """Cues named like the refit's working columns (w, linked_only, u0, day, sums) do
+    not disturb it: a second file refitted incrementally equals statsmodels OLS."""
+    rng = np.random.default_rng(4)
+    names = ["w", "linked_only", "u0", "day", "sums"]
+    n = 400
+    x = rng.normal(size=(n, len(names))) + [3.0, 1.0, -2.0, 10.0, 0.0]
+    y = x @ [1.0, -1.0, 0.5, 0.2, 2.0] + rng.normal(size=n)
+    frame = _rows_frame(rng, x, y).rename(columns={f"x{j}": c for j, c in enumerate(names)})
+    config = _small_log(tmp_path, frame.iloc[: n // 2], names)
+    later = tmp_path / "decisions_later.csv"
+    frame.iloc[n // 2 :].to_csv(later, index=False, float_format="%.17g")
+    ingest(config, [str(later)], kind="decisions")
+    assert refit(config).mode == "incremental"
+    fit, cues = _window_with_all(config, n)
+    # Reference: statsmodels OLS on all rows of the window.
+    ref = sm.OLS(y, sm.add_constant(x)).fit()
+    np.testing.assert_allclose(cues["weight"], ref.params[1:], rtol=1e-9)
+    np.testing.assert_allclose(fit["R_s"] ** 2, ref.rsquared, rtol=1e-9)
+
+
 def test_poorly_conditioned_window_is_refit_from_raw_rows(tmp_path):
     rng = np.random.default_rng(4)
     n = 500
