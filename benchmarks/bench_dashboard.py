@@ -8,14 +8,21 @@ fresh process so nothing is cached:
 
 (a) ``overview_data_s``: ``dashboard_data.window_range`` + ``overview`` (the page's reads);
 (b) ``apptest_first_run_s``: the whole app script run once by streamlit's AppTest;
-(c) ``browser_first_render_s``: `cuewatch dashboard` started, then headless Chromium
-    opens the page; time from navigation until the flagged list is shown and the run
-    has finished; ``browser_warm_render_median_s``: five more fresh tabs.  The same is
-    measured for a one-line Streamlit app (``floor_app_*``), the cost every Streamlit
-    page pays on this machine.  Skipped without /usr/bin/chromium.
+(c) in headless Chromium, ``--repeat`` rounds, each with freshly started servers: the
+    dashboard as `cuewatch dashboard` starts it, and a one-line Streamlit app
+    (``floor_app_*``: the cost every Streamlit page pays on this machine - server,
+    websocket, front end); with ``--unwarmed`` also the dashboard under plain
+    `streamlit run` (no start-up warm-up, as before ``monitor.dashboard_serve``).  Per
+    server: ``*_server_up_s`` from launch until its health check answers;
+    ``*_first_render_s``: the first tab on the fresh server (the cold visit), from
+    navigation until the flagged list is shown and the run has finished;
+    ``*_warm_render_s``: the median of ``--loads - 1`` more fresh tabs.  Each is given
+    as the best (``*_s``) and the median over rounds (``*_median_s``), and
+    ``*_first_vs_floor`` as the median over rounds of the ratio to the floor app's
+    figure in the same round (the machine is shared: only same-round ratios compare).  Skipped without /usr/bin/chromium.
 
-Goal: under 1.5 s for the first render; the overview reads only the latest fits, never
-raw decisions.  Results go to ``benchmarks/out/bench_dashboard.json``.
+Goal: under 1.5 s for the first render (the best round); the overview reads only the
+latest fits, never raw decisions.  Results go to ``benchmarks/out/bench_dashboard.json``.
 """
 
 from __future__ import annotations
@@ -135,31 +142,59 @@ def _render_times(port: int, text: str, loads: int) -> list[float]:
     return times
 
 
-def browser_render(cfg: Path, loads: int = 6) -> dict:
+def _server_commands(cfg: Path, floor_app: Path, port: int, unwarmed: bool) -> dict:
+    from monitor.config import load_config
+    from monitor.dashboard_launch import launch_command
+
+    runs = {
+        "browser": [sys.executable, "-m", "monitor", "--config", str(cfg), "dashboard",
+                    "--port", str(port)],
+        "floor_app": [sys.executable, "-m", "streamlit", "run", str(floor_app),
+                      "--server.headless", "true", "--server.address", "127.0.0.1",
+                      "--server.port", str(port)],
+    }  # fmt: skip
+    if unwarmed:
+        # The same app and options under plain `streamlit run`: no start-up warm-up.
+        dashboard = launch_command(load_config(cfg), port)
+        runs["unwarmed"] = [sys.executable, "-m", "streamlit", *dashboard[3:]]
+    return runs
+
+
+def browser_render(cfg: Path, loads: int = 6, repeat: int = 3, unwarmed: bool = False) -> dict:
     """The overview in headless Chromium, and for scale a one-line Streamlit app on the
-    same machine (the floor any Streamlit page pays: server, websocket, front end)."""
+    same machine, ``repeat`` interleaved rounds of freshly started servers."""
     if not CHROMIUM.exists():
         return {"browser_skipped": "no /usr/bin/chromium"}
-    out = {}
+    rounds: dict[str, list[dict]] = {}
     with tempfile.TemporaryDirectory() as tmp:
         floor_app = Path(tmp) / "floor.py"
         floor_app.write_text('import streamlit as st\nst.title("Flagged now")\n')
-        runs = {
-            "browser": [sys.executable, "-m", "monitor", "--config", str(cfg), "dashboard"],
-            "floor_app": [sys.executable, "-m", "streamlit", "run", str(floor_app),
-                          "--server.headless", "true", "--server.address", "127.0.0.1"],
-        }  # fmt: skip
-        for label, cmd in runs.items():
-            port = _free_port()
-            server = _serve([*cmd, "--port" if label == "browser" else "--server.port",
-                             str(port)], port)  # fmt: skip
-            try:
-                times = _render_times(port, "Flagged now", loads)
-            finally:
-                server.terminate()
-                server.wait(timeout=20)
-            out[f"{label}_first_render_s"] = times[0]
-            out[f"{label}_warm_render_median_s"] = statistics.median(times[1:])
+        for _ in range(repeat):
+            for label in _server_commands(cfg, floor_app, 0, unwarmed):
+                port = _free_port()
+                cmd = _server_commands(cfg, floor_app, port, unwarmed)[label]
+                t0 = time.perf_counter()
+                server = _serve(cmd, port)
+                up = time.perf_counter() - t0
+                try:
+                    times = _render_times(port, "Flagged now", loads)
+                finally:
+                    server.terminate()
+                    server.wait(timeout=20)
+                rounds.setdefault(label, []).append(
+                    {"up": up, "first": times[0], "warm": statistics.median(times[1:])}
+                )
+    out: dict = {"browser_rounds": repeat}
+    for label, runs in rounds.items():
+        for key, name in (("up", "server_up"), ("first", "first_render"),
+                          ("warm", "warm_render")):  # fmt: skip
+            values = [r[key] for r in runs]
+            out[f"{label}_{name}_s"] = min(values)
+            out[f"{label}_{name}_median_s"] = statistics.median(values)
+        if label != "floor_app":
+            for key, name in (("first", "first_vs_floor"), ("warm", "warm_vs_floor")):
+                ratios = [r[key] / f[key] for r, f in zip(runs, rounds["floor_app"], strict=True)]
+                out[f"{label}_{name}"] = statistics.median(ratios)
     return out
 
 
@@ -171,6 +206,11 @@ def main(argv: list[str] | None = None) -> int:
     parser.add_argument("--keep", type=Path, help="build the store here and keep it")
     parser.add_argument(
         "--reuse", action="store_true", help="time the store already built in --keep"
+    )
+    parser.add_argument("--repeat", type=int, default=3, help="rounds of fresh servers")
+    parser.add_argument("--loads", type=int, default=6, help="tabs per server (first cold)")
+    parser.add_argument(
+        "--unwarmed", action="store_true", help="also time the app under plain `streamlit run`"
     )
     args = parser.parse_args(argv)
     from benchmarks.bench_refit import build_store
@@ -191,7 +231,7 @@ def main(argv: list[str] | None = None) -> int:
                       overview_rows=int(n_rows), flagged=int(n_flagged))  # fmt: skip
         secs, shown = _child(_APPTEST_CHILD, str(cfg), str(APP))
         result.update(apptest_first_run_s=float(secs), apptest_rows_shown=int(shown))
-        result.update(browser_render(cfg))
+        result.update(browser_render(cfg, args.loads, args.repeat, args.unwarmed))
     result["goal_s"] = GOAL_S
     result["load_average_1min"] = os.getloadavg()[0]
     result["cpus"] = os.cpu_count()
@@ -200,7 +240,7 @@ def main(argv: list[str] | None = None) -> int:
     OUT.mkdir(exist_ok=True)
     (OUT / "bench_dashboard.json").write_text(json.dumps(result, indent=2))
     for key, value in result.items():
-        print(f"{key:28s} {value:.3f}" if isinstance(value, float) else f"{key:28s} {value}")
+        print(f"{key:36s} {value:.3f}" if isinstance(value, float) else f"{key:36s} {value}")
     return 0
 
 

@@ -39,9 +39,7 @@ else:
     )
 
 people = rows[rows["scope"] == "decision_maker"]
-import os as _os
-_V = _os.environ.get("PROBE_VARIANT", "")
-if not people.empty and _V not in ("nochart", "after"):
+if not people.empty:
     st.altair_chart(charts.overview_chart(rows), width="stretch")
 
 st.subheader("Latest window per decision-maker, team and overall")
@@ -50,7 +48,7 @@ table = rows.assign(
     level=rows["scope"].map({"decision_maker": "person", "team": "team", "all": "overall"}),
 )[["level", "who", "team", "window_end", "n_decisions", "R_s", "r_a", "n_linked",
    "open_alerts", "why", "R_s_trend"]]  # fmt: skip
-(st.dataframe if _V != "notable" else (lambda *a, **k: None))(
+st.dataframe(
     table,
     hide_index=True,
     width="stretch",
@@ -69,5 +67,3 @@ st.caption(
     "R_s: how well a linear model of the person's own cue use reproduces their judgments. "
     "r_a: correlation of judgments with the outcomes that have come in (linked rows only)."
 )
-if not people.empty and _V == "after":
-    st.altair_chart(charts.overview_chart(rows), width="stretch")

@@ -54,6 +54,18 @@ def _cached(fn_name: str, path: str | None, stamp: tuple, args: tuple, kwargs: t
     return getattr(dd, fn_name)(_load_config(path), *args, **dict(kwargs))
 
 
+def _read(cfg: Config, fn: Callable[..., Any], args: tuple, kwargs: dict) -> Any:
+    key_kwargs = tuple(sorted(kwargs.items()))
+    return _cached(fn.__name__, config_path(), dd.store_stamp(cfg), args, key_kwargs)
+
+
+def prefetch(fn: Callable[..., Any], *args: Any, **kwargs: Any) -> None:
+    """Fill the cache that ``load(fn, *args, **kwargs)`` reads, outside any page run
+    (the server's warm-up thread): no widgets, and a busy store raises ``StoreBusy``.
+    Call it once Streamlit's runtime exists, so the cache is the one pages use."""
+    _read(_load_config(config_path()), fn, args, kwargs)
+
+
 def load(fn: Callable[..., Any], *args: Any, **kwargs: Any) -> Any:
     """Call ``dashboard_data.<fn>(config, *args, **kwargs)`` through the cache.
 
@@ -64,9 +76,7 @@ def load(fn: Callable[..., Any], *args: Any, **kwargs: Any) -> Any:
     notice = st.empty()
     for attempt in range(BUSY_RETRIES):
         try:
-            value = _cached(
-                fn.__name__, config_path(), dd.store_stamp(cfg), args, tuple(sorted(kwargs.items()))
-            )
+            value = _read(cfg, fn, args, kwargs)
             notice.empty()
             return value
         except StoreBusy:

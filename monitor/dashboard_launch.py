@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import signal
 import subprocess
 import sys
 from pathlib import Path
@@ -30,7 +31,9 @@ def app_path() -> Path:
 
 
 def launch_command(config: Config, port: int) -> list[str]:
-    cmd = [sys.executable, "-m", "streamlit", "run", str(app_path()),
+    """`streamlit run` of the app through ``monitor.dashboard_serve``, which warms the
+    first page's imports and reads once the server is up."""
+    cmd = [sys.executable, "-m", "monitor.dashboard_serve", "run", str(app_path()),
            "--server.address", "127.0.0.1", "--server.port", str(int(port)),
            "--server.headless", "true", "--browser.gatherUsageStats", "false",
            "--client.toolbarMode", "viewer"]  # fmt: skip
@@ -40,8 +43,14 @@ def launch_command(config: Config, port: int) -> list[str]:
 
 
 def launch(config: Config, port: int) -> int:
-    """Run the Streamlit app on 127.0.0.1:``port`` until it stops; its exit code."""
+    """Run the Streamlit app on 127.0.0.1:``port`` until it stops; its exit code.
+
+    A SIGTERM to this process is passed on to the server (else it would outlive us)."""
     proc = subprocess.Popen(launch_command(config, port))
+    try:
+        previous = signal.signal(signal.SIGTERM, lambda signum, frame: proc.terminate())
+    except ValueError:  # not the main thread: signals cannot be handled here
+        previous = None
     try:
         return proc.wait()
     except KeyboardInterrupt:
@@ -51,3 +60,6 @@ def launch(config: Config, port: int) -> int:
         except subprocess.TimeoutExpired:
             proc.kill()
             return proc.wait()
+    finally:
+        if previous is not None:
+            signal.signal(signal.SIGTERM, previous)
