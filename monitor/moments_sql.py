@@ -96,16 +96,10 @@ OUTCOME_ORDER = (
 )
 
 
-def current_outcome_sql(as_of: str | None = None, decision_filter: str | None = None) -> str:
-    """The outcome that counts per decision (the latest ingested), optionally as of a time
-    and restricted to decisions matched by ``decision_filter`` (a SQL predicate on
-    ``outcomes``)."""
-    where = []
-    if as_of is not None:
-        where.append(f"ingested_at <= {lit(as_of)}::TIMESTAMPTZ")
-    if decision_filter:
-        where.append(decision_filter)
-    clause = f"WHERE {' AND '.join(where)}" if where else ""
+def current_outcome_sql(decision_filter: str | None = None) -> str:
+    """The outcome that counts per decision (the latest ingested), optionally restricted
+    to decisions matched by ``decision_filter`` (a SQL predicate on ``outcomes``)."""
+    clause = f"WHERE {decision_filter}" if decision_filter else ""
     return (
         f"SELECT decision_id, arg_max(criterion, {OUTCOME_ORDER}) AS criterion "
         f"FROM outcomes {clause} GROUP BY decision_id"
@@ -125,7 +119,7 @@ class StatLayout:
     row-major)]`` over p = k + 2 variables (design columns, judgment, criterion), with
     s sums of the shifted values z - c and q sums of their products; in the all-rows
     set the criterion entries are 0.  In memory a bucket or window is the two side by
-    side (``width``); ``finish`` makes Moments of both sets.
+    side, (m, 2 * set_width); ``finish`` makes Moments of both sets.
     """
 
     k: int
@@ -143,10 +137,6 @@ class StatLayout:
         p = self.p_linked
         return 1 + p + p * (p + 1) // 2
 
-    @property
-    def width(self) -> int:
-        return 2 * self.set_width
-
     def all_entries(self) -> np.ndarray:
         """Indices of a row's entries that are not about the criterion."""
         pl, pa = self.p_linked, self.p_all
@@ -154,12 +144,12 @@ class StatLayout:
         return np.array([0, *range(1, 1 + pa), *tri], dtype=np.intp)
 
     def count(self, sums: np.ndarray) -> np.ndarray:
-        """Rows counted in each (m, width) array (all rows)."""
+        """Rows counted in each (m, 2 * set_width) array (all rows)."""
         return sums[:, 0]
 
     def finish(self, sums: np.ndarray, shift: np.ndarray) -> tuple[Moments, Moments]:
-        """(all rows, linked rows) Moments from (m, width) sums of the two sets and each
-        row's shift (m, p_linked).  ``sums`` is left untouched."""
+        """(all rows, linked rows) Moments from (m, 2 * set_width) sums of the two sets
+        and each row's shift (m, p_linked).  ``sums`` is left untouched."""
         pw = self.set_width
         return (
             _finish_set(sums[:, :pw][:, self.all_entries()], self.p_all, shift),

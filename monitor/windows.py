@@ -235,16 +235,12 @@ def _all_windows(config: Config, buckets: Buckets, ends: np.ndarray) -> dict[str
     length = config.windows.length_days
     ent = np.repeat(np.arange(len(buckets.keys)), len(ends))
     end = np.tile(ends, len(buckets.keys))
-    per_dm = decision_maker_windows(buckets, _layout_of(buckets), ent, end, length)
+    per_dm = decision_maker_windows(buckets, _layout(config), ent, end, length)
     return {
         "decision_maker": per_dm,
         "team": pooled_windows(per_dm, "team"),
         "all": pooled_windows(per_dm, "all"),
     }
-
-
-def _layout_of(buckets: Buckets) -> StatLayout:
-    return StatLayout(buckets.shift.shape[1] - 2)
 
 
 def _pairs(names: np.ndarray, label: np.ndarray, ends: np.ndarray, every, fresh: np.ndarray):

@@ -12,13 +12,18 @@ import pandas as pd
 from monitor.config import Config, load_config
 
 
-def read_store(config_path: Path, query: str, params: list | None = None) -> pd.DataFrame:
+def query_store(config: Config, query: str, params: list | None = None) -> pd.DataFrame:
     """Run one query on a short-lived read-only connection to the configured store."""
-    con = duckdb.connect(str(load_config(config_path).store.path), read_only=True)
+    con = duckdb.connect(str(config.store.path), read_only=True)
     try:
         return con.execute(query, params or []).df()
     finally:
         con.close()
+
+
+def read_store(config_path: Path, query: str, params: list | None = None) -> pd.DataFrame:
+    """``query_store`` for the configuration file at ``config_path``."""
+    return query_store(load_config(config_path), query, params)
 
 
 def design_frame(config: Config, rows: pd.DataFrame) -> pd.DataFrame:

@@ -16,10 +16,7 @@ import hashlib
 import hmac
 import json
 import shutil
-import socket
-import threading
 from datetime import UTC, datetime, timedelta
-from http.server import BaseHTTPRequestHandler, ThreadingHTTPServer
 from pathlib import Path
 
 import duckdb
@@ -29,6 +26,7 @@ import pytest
 from aiosmtpd.controller import Controller
 from conftest import make_config, run_cli, text
 from demo_store import build_demo_store
+from local_servers import SmtpInbox, WebhookReceiver, free_port
 
 from monitor.alerts import _reconcile, acknowledge, assess, list_alerts
 from monitor.config import load_config
@@ -83,58 +81,6 @@ def _assert_same(a: dict[str, pd.DataFrame], b: dict[str, pd.DataFrame]) -> None
         pd.testing.assert_frame_equal(a[name], b[name], obj=name)
 
 
-def _free_port() -> int:
-    with socket.socket() as s:
-        s.bind(("127.0.0.1", 0))
-        return s.getsockname()[1]
-
-
-class _Inbox:
-    def __init__(self):
-        self.messages: list[bytes] = []
-
-    async def handle_DATA(self, server, session, envelope):  # noqa: N802 (aiosmtpd hook)
-        self.messages.append(envelope.content)
-        return "250 OK"
-
-
-class _Receiver:
-    """A local webhook receiver answering ``status`` (changeable) to every POST."""
-
-    def __init__(self, status: int = 200):
-        self.status = status
-        self.requests: list[tuple[int, dict, bytes]] = []
-        receiver = self
-
-        class Handler(BaseHTTPRequestHandler):
-            def do_POST(self):  # noqa: N802 (http.server hook)
-                body = self.rfile.read(int(self.headers["Content-Length"]))
-                status = receiver.status
-                receiver.requests.append((status, dict(self.headers), body))
-                self.send_response(status)
-                self.end_headers()
-                self.wfile.write(b"ok" if status < 300 else b"unavailable")
-
-            def log_message(self, *args):
-                pass
-
-        self.server = ThreadingHTTPServer(("127.0.0.1", 0), Handler)
-        self.server.daemon_threads = True
-        self.url = f"http://127.0.0.1:{self.server.server_address[1]}/hook"
-        self.thread = threading.Thread(target=self.server.serve_forever, args=(0.05,), daemon=True)
-
-    def __enter__(self):
-        self.thread.start()
-        return self
-
-    def __exit__(self, *exc):
-        self.server.shutdown()
-        self.server.server_close()
-
-    def delivered(self) -> list[dict]:
-        return [json.loads(body) for status, _, body in self.requests if status < 300]
-
-
 def _webhook_section(url: str, secret_env: str = "CW_TEST_HOOK_SECRET") -> str:
     return (
         f'[alerts.webhook]\nurl = "{url}"\nsecret_env = "{secret_env}"\n'
@@ -148,8 +94,8 @@ def _webhook_section(url: str, secret_env: str = "CW_TEST_HOOK_SECRET") -> str:
 def test_assess_e_mails_each_opened_alert_to_a_local_smtp_server(demo_config, tmp_path):
     cfg_path = _copy(demo_config, tmp_path)
     _forget_assessment(cfg_path)
-    inbox = _Inbox()
-    ctl = Controller(inbox, hostname="127.0.0.1", port=_free_port())
+    inbox = SmtpInbox()
+    ctl = Controller(inbox, hostname="127.0.0.1", port=free_port())
     ctl.start()
     try:
         _append(
@@ -167,7 +113,9 @@ def test_assess_e_mails_each_opened_alert_to_a_local_smtp_server(demo_config, tm
     assert len(inbox.messages) == len(open_docs) and summary.delivery_failures == []
     mails = {
         int(m["X-Cuewatch-Alert"]): m
-        for m in (email.message_from_bytes(b, policy=email.policy.default) for b in inbox.messages)
+        for m in (
+            email.message_from_bytes(b, policy=email.policy.default) for _, _, b in inbox.messages
+        )
     }
     doc = next(d for d in open_docs if d["kind"] == "forbidden_cue")
     truth = load_truth(demo_config.parent / "scenario")
@@ -200,7 +148,7 @@ def test_assess_posts_signed_webhooks_that_verify_independently(demo_config, tmp
     monkeypatch.setenv("CW_TEST_HOOK_SECRET", secret)
     cfg_path = _copy(demo_config, tmp_path)
     _forget_assessment(cfg_path)
-    with _Receiver() as rx:
+    with WebhookReceiver() as rx:
         _append(cfg_path, _webhook_section(rx.url))
         config = load_config(cfg_path)
         summary = assess(config, **NO_SLEEP)
@@ -208,13 +156,13 @@ def test_assess_posts_signed_webhooks_that_verify_independently(demo_config, tmp
     assert len(rx.requests) == len(open_docs) == len(summary.opened) > 0
     kinds = {d["kind"] for d in open_docs.values()}
     assert {"forbidden_cue", "proxy_use"} <= kinds
-    for _, headers, body in rx.requests:
+    for headers, body in rx.requests:
         # HMAC-SHA256 over the exact body bytes (RFC 2104; Python's hmac module).
         expected = "sha256=" + hmac.new(secret.encode(), body, hashlib.sha256).hexdigest()
         assert hmac.compare_digest(headers["X-Cuewatch-Signature"], expected)
         got = json.loads(body)
         assert got == {**open_docs[got["id"]], "event": "opened"}
-    assert len({h["X-Cuewatch-Delivery"] for _, h, _ in rx.requests}) == len(rx.requests)
+    assert len({h["X-Cuewatch-Delivery"] for h, _ in rx.requests}) == len(rx.requests)
 
 
 def test_a_failing_receiver_gets_each_alert_once_after_it_recovers(
@@ -224,7 +172,7 @@ def test_a_failing_receiver_gets_each_alert_once_after_it_recovers(
     cfg_path = _copy(demo_config, tmp_path)
     _forget_assessment(cfg_path)
     db = None
-    with _Receiver(status=503) as rx:
+    with WebhookReceiver(status=503) as rx:
         _append(cfg_path, _webhook_section(rx.url))
         config = load_config(cfg_path)
         db = str(config.store.path)
@@ -263,7 +211,7 @@ def test_assess_again_or_forced_changes_nothing_and_sends_nothing(
     monkeypatch.setenv("CW_TEST_HOOK_SECRET", "s")
     cfg_path = _copy(demo_config, tmp_path)
     _forget_assessment(cfg_path)
-    with _Receiver() as rx:
+    with WebhookReceiver() as rx:
         _append(cfg_path, _webhook_section(rx.url))
         config = load_config(cfg_path)
         assess(config, **NO_SLEEP)

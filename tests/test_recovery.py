@@ -11,10 +11,10 @@ from __future__ import annotations
 from datetime import timedelta
 from pathlib import Path
 
-import duckdb
 import numpy as np
 import pandas as pd
 import pytest
+from store_rows import query_store as _table
 from test_windows import concat_csv, scenario_config
 
 from monitor.config import Config, load_config
@@ -44,14 +44,6 @@ def _build(root: Path, seed: int) -> tuple[Config, ScenarioTruth]:
 @pytest.fixture(scope="module")
 def stores(tmp_path_factory) -> dict[int, tuple[Config, ScenarioTruth]]:
     return {s: _build(tmp_path_factory.mktemp(f"seed{s}"), s) for s in SEEDS}
-
-
-def _table(config: Config, sql: str) -> pd.DataFrame:
-    con = duckdb.connect(str(config.store.path), read_only=True)
-    try:
-        return con.execute(sql).df()
-    finally:
-        con.close()
 
 
 def _weights(config: Config, scope: str, who: str) -> pd.DataFrame:

@@ -9,16 +9,12 @@ import hashlib
 import hmac
 import json
 import shutil
-import socket
 import ssl
 import subprocess
-import threading
-import time
-from http.server import BaseHTTPRequestHandler, ThreadingHTTPServer
 
 import pytest
 from aiosmtpd.controller import Controller
-from aiosmtpd.smtp import AuthResult
+from local_servers import SmtpInbox, WebhookReceiver, free_port
 
 from monitor.config import AlertsConfig, EmailConfig, WebhookConfig
 from monitor.sinks import (
@@ -67,12 +63,6 @@ def _no_proxy(monkeypatch):
     # urllib honours proxy variables; the receivers here are local.
     for name in ("http_proxy", "HTTP_PROXY", "https_proxy", "HTTPS_PROXY", "all_proxy"):
         monkeypatch.delenv(name, raising=False)
-
-
-def _free_port() -> int:
-    with socket.socket() as s:
-        s.bind(("127.0.0.1", 0))
-        return s.getsockname()[1]
 
 
 # --- wording -------------------------------------------------------------------------
@@ -160,22 +150,6 @@ def test_append_jsonl_rejects_nan(tmp_path):
 # --- e-mail sink ---------------------------------------------------------------------
 
 
-class _Inbox:
-    def __init__(self):
-        self.messages: list[tuple[str, list[str], bytes]] = []
-        self.logins: list[tuple[bytes, bytes]] = []
-
-    async def handle_DATA(self, server, session, envelope):  # noqa: N802 (aiosmtpd hook)
-        self.messages.append((envelope.mail_from, list(envelope.rcpt_tos), envelope.content))
-        return "250 OK"
-
-    def authenticate(self, server, session, envelope, mechanism, auth_data):
-        self.logins.append((auth_data.login, auth_data.password))
-        ok = auth_data.login == b"alerts" and auth_data.password == b"s3cret"
-        # handled=False: let aiosmtpd answer 535 itself (it stays silent otherwise).
-        return AuthResult(success=ok, handled=False)
-
-
 @pytest.fixture(scope="module")
 def tls_files(tmp_path_factory):
     """A throw-away self-signed certificate for 127.0.0.1, made with the openssl CLI."""
@@ -192,8 +166,8 @@ def tls_files(tmp_path_factory):
     return cert, key
 
 
-def _smtp(inbox: _Inbox, **params) -> Controller:
-    ctl = Controller(inbox, hostname="127.0.0.1", port=_free_port(), **params)
+def _smtp(inbox: SmtpInbox, **params) -> Controller:
+    ctl = Controller(inbox, hostname="127.0.0.1", port=free_port(), **params)
     ctl.start()
     return ctl
 
@@ -204,7 +178,7 @@ def _email_cfg(port: int, **kw) -> EmailConfig:
     return EmailConfig(**{**base, **kw})
 
 
-def _received(inbox: _Inbox) -> email.message.EmailMessage:
+def _received(inbox: SmtpInbox) -> email.message.EmailMessage:
     assert len(inbox.messages) == 1
     mail_from, rcpts, content = inbox.messages[0]
     assert mail_from == "cuewatch@example.org"
@@ -213,7 +187,7 @@ def _received(inbox: _Inbox) -> email.message.EmailMessage:
 
 
 def test_email_plain_smtp_delivers_the_whole_message():
-    inbox = _Inbox()
+    inbox = SmtpInbox()
     ctl = _smtp(inbox)
     try:
         alerts = AlertsConfig(email=_email_cfg(ctl.port))
@@ -232,7 +206,7 @@ def test_email_starttls_with_auth_from_env(tls_files, monkeypatch):
     cert, key = tls_files
     server_ctx = ssl.create_default_context(ssl.Purpose.CLIENT_AUTH)
     server_ctx.load_cert_chain(cert, key)
-    inbox = _Inbox()
+    inbox = SmtpInbox()
     ctl = _smtp(inbox, tls_context=server_ctx, require_starttls=True,
                 authenticator=inbox.authenticate, auth_require_tls=True)  # fmt: skip
     monkeypatch.setenv("CW_SMTP_USER", "alerts")
@@ -259,7 +233,7 @@ def test_email_implicit_ssl(tls_files):
     cert, key = tls_files
     server_ctx = ssl.create_default_context(ssl.Purpose.CLIENT_AUTH)
     server_ctx.load_cert_chain(cert, key)
-    inbox = _Inbox()
+    inbox = SmtpInbox()
     ctl = _smtp(inbox, ssl_context=server_ctx)
     try:
         cfg = _email_cfg(ctl.port, security="ssl")
@@ -280,7 +254,7 @@ def test_email_missing_credential_variable_is_named(monkeypatch):
 
 
 def test_email_unreachable_server_is_a_sink_error():
-    cfg = _email_cfg(_free_port(), timeout_s=2)
+    cfg = _email_cfg(free_port(), timeout_s=2)
     with pytest.raises(SinkError, match="cannot reach"):
         send_email(cfg, render_email(ALERT, ack_hint=ACK))
 
@@ -288,47 +262,9 @@ def test_email_unreachable_server_is_a_sink_error():
 # --- webhook sink --------------------------------------------------------------------
 
 
-class _Receiver:
-    """A local HTTP receiver answering a scripted list of (status, delay_s)."""
-
-    def __init__(self, script: list[tuple[int, float]]):
-        self.script = list(script)
-        self.requests: list[tuple[dict, bytes]] = []
-        receiver = self
-
-        class Handler(BaseHTTPRequestHandler):
-            def do_POST(self):  # noqa: N802 (http.server hook)
-                body = self.rfile.read(int(self.headers["Content-Length"]))
-                receiver.requests.append((dict(self.headers), body))
-                status, delay = receiver.script.pop(0) if receiver.script else (200, 0)
-                time.sleep(delay)
-                try:
-                    self.send_response(status)
-                    self.end_headers()
-                    self.wfile.write(b"ok" if status < 300 else b"nope")
-                except OSError:
-                    pass  # the client gave up (time-out test)
-
-            def log_message(self, *args):
-                pass
-
-        self.server = ThreadingHTTPServer(("127.0.0.1", 0), Handler)
-        self.server.daemon_threads = True
-        self.url = f"http://127.0.0.1:{self.server.server_address[1]}/hook"
-        self.thread = threading.Thread(target=self.server.serve_forever, args=(0.05,), daemon=True)
-
-    def __enter__(self):
-        self.thread.start()
-        return self
-
-    def __exit__(self, *exc):
-        self.server.shutdown()
-        self.server.server_close()
-
-
 def test_webhook_body_and_signature_verify_independently(monkeypatch):
     monkeypatch.setenv("CW_HOOK_SECRET", "hook-secret")
-    with _Receiver([(200, 0)]) as rx:
+    with WebhookReceiver(script=[(200, 0)]) as rx:
         cfg = AlertsConfig(webhook=WebhookConfig(url=rx.url, secret_env="CW_HOOK_SECRET"))
         deliver(cfg, ALERT, "webhook")
     (headers, body), = rx.requests  # fmt: skip
@@ -354,7 +290,7 @@ def test_delivery_id_is_stable_per_event():
 
 def test_webhook_retries_503_then_succeeds_once():
     sleeps: list[float] = []
-    with _Receiver([(503, 0), (503, 0), (200, 0)]) as rx:
+    with WebhookReceiver(script=[(503, 0), (503, 0), (200, 0)]) as rx:
         cfg = WebhookConfig(url=rx.url, retries=3, backoff_s=0.5)
         post_webhook(cfg, ALERT, sleep=sleeps.append)
     assert len(rx.requests) == 3
@@ -365,7 +301,7 @@ def test_webhook_retries_503_then_succeeds_once():
 
 def test_webhook_400_is_not_retried():
     sleeps: list[float] = []
-    with _Receiver([(400, 0), (200, 0)]) as rx:
+    with WebhookReceiver(script=[(400, 0), (200, 0)]) as rx:
         cfg = WebhookConfig(url=rx.url, retries=3, backoff_s=0.1)
         with pytest.raises(SinkError, match="HTTP 400.*not retried"):
             post_webhook(cfg, ALERT, sleep=sleeps.append)
@@ -374,7 +310,7 @@ def test_webhook_400_is_not_retried():
 
 def test_webhook_429_is_retried_and_exhaustion_is_reported():
     sleeps: list[float] = []
-    with _Receiver([(429, 0), (500, 0), (502, 0)]) as rx:
+    with WebhookReceiver(script=[(429, 0), (500, 0), (502, 0)]) as rx:
         cfg = WebhookConfig(url=rx.url, retries=2, backoff_s=0.1)
         with pytest.raises(SinkError, match=r"HTTP 502\b.* after 3 attempt"):
             post_webhook(cfg, ALERT, sleep=sleeps.append)
@@ -383,7 +319,7 @@ def test_webhook_429_is_retried_and_exhaustion_is_reported():
 
 def test_webhook_timeout_is_retried():
     sleeps: list[float] = []
-    with _Receiver([(200, 1.0), (200, 0)]) as rx:
+    with WebhookReceiver(script=[(200, 1.0), (200, 0)]) as rx:
         cfg = WebhookConfig(url=rx.url, retries=1, backoff_s=0.0, timeout_s=0.3)
         post_webhook(cfg, ALERT, sleep=sleeps.append)
     assert len(rx.requests) == 2 and sleeps == [0.0]
@@ -397,7 +333,7 @@ def test_webhook_missing_secret_variable_is_named(monkeypatch):
 
 
 def test_webhook_redirect_is_not_followed():
-    with _Receiver([(307, 0)]) as rx:
+    with WebhookReceiver(script=[(307, 0)]) as rx:
         with pytest.raises(SinkError, match="HTTP 307"):
             post_webhook(WebhookConfig(url=rx.url, retries=2), ALERT, sleep=lambda s: None)
     assert len(rx.requests) == 1

@@ -34,7 +34,7 @@ def _buckets(rng: np.random.Generator, count: int) -> tuple[list[np.ndarray], Mo
 def test_group_sums_equal_the_covariance_of_the_pooled_rows():
     rng = np.random.default_rng(21)
     rows, stack = _buckets(rng, 300)
-    group = rng.integers(0, 7, size=300)  # unsorted membership, as in build_series
+    group = rng.integers(0, 7, size=300)  # unsorted membership, as in pooled_windows
     got = group_sums(stack, group, 8)  # group 7 has no members
     assert got.n[7] == 0 and np.all(got.comoment[7] == 0)
     for g in range(7):

@@ -12,12 +12,12 @@ import shutil
 from datetime import date, timedelta
 from pathlib import Path
 
-import duckdb
 import numpy as np
 import pandas as pd
 import pytest
 import statsmodels.api as sm
 from conftest import REPO, run_cli, text, write_config
+from store_rows import query_store as read_table
 
 from monitor.config import Config, load_config
 from monitor.ingest import ingest
@@ -65,14 +65,6 @@ def copy_store(config_path: Path, folder: Path) -> Path:
     target.parent.mkdir(parents=True, exist_ok=True)
     shutil.copy(config.store.path, target)
     return new_cfg
-
-
-def read_table(config: Config, sql: str) -> pd.DataFrame:
-    con = duckdb.connect(str(config.store.path), read_only=True)
-    try:
-        return con.execute(sql).df()
-    finally:
-        con.close()
 
 
 FIT_KEYS = ["scope", "decision_maker", "window_end"]
