@@ -246,7 +246,7 @@ def _stage(
             reader = "SELECT * FROM _raw"
         con.execute(
             "CREATE TEMP TABLE _checked AS "
-            + checks.checked_sql(reader, horizon=horizon, earliest=config.ingest.earliest)
+            + checks.checked_sql(reader, fmt, horizon=horizon, earliest=config.ingest.earliest)
         )
     finally:
         if tz != config.decisions.timezone:
@@ -279,7 +279,7 @@ def _write_batch(
     ingested_at = utc_now()
     accepted = con.execute(insert_sql(checks, batch_id, ingested_at)).fetchone()
     accepted = int(accepted[0]) if accepted else 0
-    con.execute(quarantine_sql(checks, batch_id, ingested_at, fmt))
+    con.execute(quarantine_sql(checks, batch_id, ingested_at))
     if rejected_lines:
         con.execute(
             "INSERT INTO quarantine SELECT ?, ?, line, NULL, 'malformed_record', "

@@ -86,22 +86,40 @@ class Checks:
 
     # --- parsing ---------------------------------------------------------------------
 
+    # Parsing runs in two layers so no text is trimmed or cast twice: the first gives
+    # each column its trimmed text (t_<alias>) or its number (c_<alias>; DuckDB's cast
+    # to DOUBLE ignores surrounding whitespace itself), the second the parsed value.
+
+    def _pre_expr(self, c: FileColumn) -> str | None:
+        """The first-layer expression of column ``c`` (None: parsed straight from the text)."""
+        if c.role in ("id", "maker", "team"):
+            return f"{_v(c.alias)} AS t_{c.alias}"
+        if c.role == "value":
+            numeric = not self._value_spec()[0]
+        elif c.role == "cue":
+            cue = self.config.cues[c.cue]
+            numeric = cue.type == "numeric" or (cue.type == "binary" and not cue.values)
+        else:
+            return None
+        if numeric:
+            return f"TRY_CAST({c.alias} AS DOUBLE) AS c_{c.alias}"
+        return f"{_v(c.alias)} AS t_{c.alias}"
+
     def _value_expr(self, alias: str, values: dict[str, float]) -> str:
         if values:
             whens = " ".join(f"WHEN {lit(k)} THEN {float(v)!r}" for k, v in values.items())
-            return f"(CASE {_v(alias)} {whens} END)"
-        return f"(CASE WHEN isfinite(TRY_CAST({_v(alias)} AS DOUBLE)) THEN TRY_CAST({_v(alias)} AS DOUBLE) END)"
+            return f"(CASE t_{alias} {whens} END)"
+        return f"(CASE WHEN isfinite(c_{alias}) THEN c_{alias} END)"
 
     def _cue_expr(self, c: FileColumn, cue: CueConfig) -> str:
-        v = _v(c.alias)
         if cue.type == "categorical":
             levels = ", ".join(lit(x) for x in cue.levels)
-            return f"(CASE WHEN {v} IN ({levels}) THEN {v} END)"
+            return f"(CASE WHEN t_{c.alias} IN ({levels}) THEN t_{c.alias} END)"
         if cue.type == "binary":
             if cue.values:
                 return self._value_expr(c.alias, cue.values)
-            return f"(CASE WHEN TRY_CAST({v} AS DOUBLE) IN (0, 1) THEN TRY_CAST({v} AS DOUBLE) END)"
-        return f"(CASE WHEN isfinite(TRY_CAST({v} AS DOUBLE)) THEN TRY_CAST({v} AS DOUBLE) END)"
+            return f"(CASE WHEN c_{c.alias} IN (0, 1) THEN c_{c.alias} END)"
+        return self._value_expr(c.alias, {})
 
     def _value_checks(
         self, c: FileColumn, values: dict, rng, prefix: str
@@ -179,30 +197,61 @@ class Checks:
             )
         return out
 
-    def checked_sql(self, reader: str, *, horizon: datetime, earliest: str) -> str:
-        """SELECT over the file reader ``reader`` giving the raw text columns, parsed
-        columns and a reason code per record, in file order (so the staged table's
-        rowid is the record's ordinal).  The raw record's JSON form and the message are
-        built only for quarantined records, in ``ingest_writes.quarantine_sql``
-        (message is NULL here unless a later step sets it)."""
+    def checked_sql(
+        self, reader: str, fmt: str, *, horizon: datetime, earliest: str, shortcut: bool = True
+    ) -> str:
+        """SELECT over the file reader ``reader`` giving the parsed columns and a reason
+        code per record, in file order (so the staged table's rowid is the record's
+        ordinal).  Only a record that fails a check gets its message and its raw form
+        (``raw_record``, JSON text): an accepted record needs its parsed values only,
+        which keeps the staging table narrow.  ``shortcut`` False leaves out the
+        one-test pass for the common case (the tests compare the two)."""
         parsed, checks = self._parse_and_checks(horizon, earliest)
+        # Almost every record passes: one cheap test on the parsed values settles
+        # those, and only the others go through the checks in order for their reason.
         reason = "CASE " + " ".join(f"WHEN {w} THEN '{r}'" for w, r, _ in checks) + " END"
+        if shortcut:
+            reason = f"CASE WHEN {' AND '.join(self._passes(horizon, earliest))} THEN NULL ELSE {reason} END"
+        pre = [e for e in map(self._pre_expr, self.columns) if e is not None]
+        working = ", ".join(e.rsplit(" AS ", 1)[1] for e in pre)
         aliases = ", ".join(c.alias for c in self.columns)
-        # The raw text is kept only for records that fail a check (they go to
-        # quarantine as they were read); an accepted record needs its parsed values
-        # only, which halves what the staging table holds.
-        kept = ", ".join(
-            f"CASE WHEN reason IS NULL THEN NULL ELSE {a} END AS {a}"
-            for a in ["raw_line", *(c.alias for c in self.columns)]
-        )
         return (
-            f"WITH parsed AS (SELECT *, {', '.join(parsed)} FROM ({reader})), "
+            f"WITH pre AS (SELECT *, {', '.join(pre)} FROM ({reader})), "
+            f"parsed AS (SELECT *, {', '.join(parsed)} FROM pre), "
             f"checked AS (SELECT parsed.*, {reason} AS reason FROM parsed) "
-            f"SELECT is_blank, {kept}, "
-            f"checked.* EXCLUDE (is_blank, is_malformed, raw_line, reason, {aliases}), "
-            f"reason, NULL::VARCHAR AS message, false AS is_duplicate "
+            f"SELECT is_blank, "
+            f"checked.* EXCLUDE (is_blank, is_malformed, raw_line, reason, {aliases}, {working}), "
+            f"reason, CASE WHEN reason IS NOT NULL THEN {self._message_expr()} END AS message, "
+            f"CASE WHEN reason IS NOT NULL THEN {self._raw_record_expr(fmt)} END AS raw_record, "
+            f"false AS is_duplicate "
             f"FROM checked"
         )
+
+    def _passes(self, horizon: datetime, earliest: str) -> list[str]:
+        """Conditions that all hold exactly when none of the checks of
+        ``_parse_and_checks`` fires: a parsed value is NULL whenever its text is
+        empty, so testing the parsed values (and ranges) is enough."""
+        out = ["NOT is_malformed"]
+        for c in self.columns:
+            p = f"p_{c.alias}"
+            if c.role in ("id", "maker", "team"):
+                if c.required:
+                    out.append(f"{p} IS NOT NULL")
+            elif c.role == "time":
+                out.append(
+                    f"{p} IS NOT NULL AND {p} <= {lit(horizon.isoformat())}::TIMESTAMPTZ "
+                    f"AND {p} >= {lit(earliest)}::TIMESTAMPTZ"
+                )
+            else:
+                out.append(f"{p} IS NOT NULL")
+                if c.role == "value":
+                    rng = self._value_spec()[1]
+                else:
+                    cue = self.config.cues[c.cue]
+                    rng = cue.range if cue.type == "numeric" else None
+                if rng is not None:
+                    out.append(f"{p} BETWEEN {float(rng[0])!r} AND {float(rng[1])!r}")
+        return out
 
     def _parse_and_checks(
         self, horizon: datetime | None, earliest: str
@@ -220,7 +269,7 @@ class Checks:
         for c in self.columns:
             v = _v(c.alias)
             if c.role in ("id", "maker", "team"):
-                parsed.append(f"{v} AS p_{c.alias}")
+                parsed.append(f"t_{c.alias} AS p_{c.alias}")
                 if c.required:
                     checks.append((f"{v} IS NULL", "missing_field", f"'{c.source} is empty'"))
             elif c.role == "time":
@@ -281,9 +330,9 @@ class Checks:
 
     # --- messages ----------------------------------------------------------------------
 
-    def message_expr(self) -> str:
-        """The one-line message of a quarantined record, from its reason and values.
-        Used only when quarantining (ingest_writes.quarantine_sql): most records need none."""
+    def _message_expr(self) -> str:
+        """The one-line message of a record that failed a check, from its reason and
+        values (staging evaluates it for those records only)."""
         _, checks = self._parse_and_checks(None, self.config.ingest.earliest)
         counts: dict[str, int] = {}
         for _, r, _ in checks:
@@ -294,7 +343,38 @@ class Checks:
             else f"WHEN reason = '{r}' AND {w} THEN {m}"
             for w, r, m in checks
         )
-        return f"coalesce(message, CASE {whens} END, reason)"
+        return f"coalesce(CASE {whens} END, reason)"
+
+    # --- the record as quarantine keeps it -----------------------------------------------
+
+    def _raw_record_expr(self, fmt: str) -> str:
+        """SQL: a failing record as JSON text, as it was read.  A JSON Lines record is
+        its own line; a line that is not a JSON object becomes a JSON string, so
+        json.loads gives back the exact text."""
+        if fmt == "jsonl":
+            return (
+                "CASE WHEN reason = 'malformed_record' THEN CAST(to_json(raw_line) AS VARCHAR) "
+                f"ELSE coalesce(raw_line, {self._record_json(True)}) END"
+            )
+        return self._record_json(True)
+
+    def _record_json(self, raw: bool) -> str:
+        pairs = ", ".join(
+            f"{lit(c.source)}, "
+            + (
+                f"coalesce({c.alias}, CAST(p_{c.alias} AS VARCHAR))"
+                if raw
+                else f"CAST(p_{c.alias} AS VARCHAR)"
+            )
+            for c in self.columns
+        )
+        return f"CAST(json_object({pairs}) AS VARCHAR)"
+
+    def quarantined_record_expr(self) -> str:
+        """SQL over the staging table: the quarantined record as JSON text.  A record
+        found to conflict only after staging (a duplicate id with other content) kept
+        no raw form: its parsed values stand in for it."""
+        return f"coalesce(raw_record, {self._record_json(False)})"
 
 
 def build_checks(config: Config, kind: str) -> Checks:

@@ -77,9 +77,10 @@ def classify_duplicates_sql(checks: Checks) -> str:
     if checks.kind == "outcomes":
         # Several rows for one decision in one file: identical ones are duplicates,
         # different ones are successive corrections (all appended, in file order).
+        repeated = _repeated_ids(idc, "reason IS NULL AND NOT is_blank")
         within = (
-            f"UPDATE _checked AS c SET is_duplicate = true FROM _checked AS f "
-            f"WHERE c.{idc} = f.{idc} AND f.rowid < c.rowid AND ({same}) "
+            f"UPDATE _checked AS c SET is_duplicate = true FROM {repeated} AS m, _checked AS f "
+            f"WHERE c.{idc} = m.k AND f.{idc} = m.k AND f.rowid < c.rowid AND ({same}) "
             f"AND c.reason IS NULL AND f.reason IS NULL AND NOT f.is_blank AND NOT c.is_blank"
         )
     else:
@@ -88,13 +89,25 @@ def classify_duplicates_sql(checks: Checks) -> str:
             f"UPDATE _checked AS c SET is_duplicate = ({same}), "
             f"reason = CASE WHEN ({same}) THEN NULL ELSE 'conflicting_duplicate' END, "
             f"message = CASE WHEN ({same}) THEN NULL ELSE {in_file_conflict} END "
-            f"FROM (SELECT {idc} AS k, min(rowid) AS first_ord FROM _checked "
-            f"      WHERE reason IS NULL AND NOT is_duplicate AND NOT is_blank "
-            f"      GROUP BY {idc} HAVING count(*) > 1) AS m, _checked AS f "
+            f"FROM {_repeated_ids(idc, 'reason IS NULL AND NOT is_duplicate AND NOT is_blank')} AS m, "
+            f"_checked AS f "
             f"WHERE c.{idc} = m.k AND f.rowid = m.first_ord AND c.rowid > m.first_ord "
             f"AND c.reason IS NULL AND NOT c.is_duplicate AND NOT c.is_blank"
         )
     return stored + ";\n" + within
+
+
+def _repeated_ids(idc: str, where: str) -> str:
+    """SQL: the ids (k) that occur more than once among the staged records matching
+    ``where``, with the ordinal of the first (first_ord).  Grouping the ids' 64-bit
+    hashes first is much cheaper than grouping millions of strings, and only the
+    few records whose hash repeats are then grouped by the id itself."""
+    return (
+        f"(SELECT {idc} AS k, min(rowid) AS first_ord FROM _checked "
+        f"WHERE {where} AND hash({idc}) IN (SELECT h FROM (SELECT hash({idc}) AS h FROM _checked "
+        f"WHERE {where} GROUP BY h HAVING count(*) > 1)) "
+        f"GROUP BY {idc} HAVING count(*) > 1)"
+    )
 
 
 # --- writing -------------------------------------------------------------------------------
@@ -133,30 +146,12 @@ def _team_expr(checks: Checks) -> str:
     return f"p_{team[0].alias}" if team else "NULL"
 
 
-def _raw_json_expr(checks: Checks, fmt: str) -> str:
-    # raw_row is always JSON text: the record itself, or (when it is not a JSON
-    # object) the line as a JSON string, so json.loads gives back the exact text.
-    # A record found to conflict only after staging (a duplicate id with other
-    # content) kept no raw text: its parsed values stand in for it.
-    pairs = ", ".join(
-        f"{lit(c.source)}, coalesce({c.alias}, CAST(p_{c.alias} AS VARCHAR))"
-        for c in checks.columns
-    )
-    parsed_json = f"CAST(json_object({pairs}) AS VARCHAR)"
-    if fmt == "jsonl":
-        return (
-            "CASE WHEN reason = 'malformed_record' THEN CAST(to_json(raw_line) AS VARCHAR) "
-            f"ELSE coalesce(raw_line, {parsed_json}) END"
-        )
-    return parsed_json
-
-
-def quarantine_sql(checks: Checks, batch_id: int, ingested_at: datetime, fmt: str) -> str:
+def quarantine_sql(checks: Checks, batch_id: int, ingested_at: datetime) -> str:
     """INSERT moving the rejected records of _checked to quarantine, in file order."""
     return (
         f"INSERT INTO quarantine SELECT {batch_id}, {lit(checks.kind)}, {checks.line_expr('rowid')}, "
-        f"p_{checks.col('id').alias}, reason, {checks.message_expr()}, "
-        f"{_raw_json_expr(checks, fmt)}, {lit(ingested_at.isoformat())}::TIMESTAMPTZ "
+        f"p_{checks.col('id').alias}, reason, coalesce(message, reason), "
+        f"{checks.quarantined_record_expr()}, {lit(ingested_at.isoformat())}::TIMESTAMPTZ "
         f"FROM _checked WHERE reason IS NOT NULL AND NOT is_blank ORDER BY rowid"
     )
 

@@ -15,8 +15,10 @@ import io
 import json
 import shutil
 import tempfile
+from datetime import UTC
 from pathlib import Path
 
+import pytest
 from conftest import DECISION_COLUMNS, decision_row, make_config
 from hypothesis import HealthCheck, Phase, given, settings
 from hypothesis import strategies as st
@@ -199,3 +201,115 @@ def test_fuzzed_csv_is_fully_accounted_for(sample):
 def test_fuzzed_jsonl_is_fully_accounted_for(sample):
     text, n_records = sample
     assert _ingest_and_check(text, ".jsonl")["rows_read"] == n_records
+
+
+# --- the one-test pass for records that pass ------------------------------------------
+# Staging settles most records with one test on their parsed values and runs the
+# ordered checks only on the rest (monitor.ingest_checks.Checks.checked_sql).  The
+# reason of every record must be the same as with the ordered checks alone.
+
+# Values at the edges of the test configuration's checks: ranges (score 0-100, amount
+# 0-1000), maps (Y/N, Yes/No, 0/1), levels, and the horizon / earliest dates used below.
+_EDGE = {
+    "number": ["0", "-0", "1", " 5 ", "1e3", "100", "100.0000001", "-1e-300", "1000",
+               "1000.0000001", "inf", "-inf", "NaN", "0x10", "+7", "1_0"],
+    "map": ["Y", "N", "y", " Y", "Yes", "No", "yes", "0", "1", "0.0", "2"],
+    "level": ["north", "south", " north", "North", "a", "b", "c", "d", ""],
+    "time": ["2024-06-01 00:00:00", "2024-06-01 00:00:01", "2024-05-31 23:59:59+00",
+             "2000-01-01", "1999-12-31 23:59:59", "2024-02-30", "2024-06-01T00:00:00Z"],
+}  # fmt: skip
+_COLUMN_EDGE = {
+    "decided": "time", "seen": "time", "score": "number", "amount": "number",
+    "age_days": "number", "report": "map", "witness": "map", "result": "map",
+    "region": "level", "band": "level",
+}  # fmt: skip
+
+
+@st.composite
+def _edge_record(draw, kind: str) -> list[str]:
+    """A valid record with zero, one or two fields replaced by a value at the edge of
+    that field's checks (or, now and then, any text)."""
+    from conftest import OUTCOME_COLUMNS, outcome_row
+
+    row = (decision_row if kind == "decisions" else outcome_row)(draw(st.integers(0, 99)))
+    columns = DECISION_COLUMNS if kind == "decisions" else OUTCOME_COLUMNS
+    for c in draw(st.lists(st.sampled_from(columns), max_size=2)):
+        edge = st.sampled_from(_EDGE[_COLUMN_EDGE.get(c, "level")])
+        row[c] = draw(st.one_of(edge, edge, edge, _SPICY, _TEXT))
+    return [row[c] for c in columns]
+
+
+def _reasons(cfg, kind: str, path: Path, shortcut: bool) -> list:
+    from datetime import datetime
+
+    import duckdb
+
+    from monitor.ingest_checks import build_checks, reader_sql
+    from monitor.ingest_files import present_columns
+
+    con = duckdb.connect()
+    con.execute(f"SET TimeZone = '{cfg.decisions.timezone}'")
+    checks = build_checks(cfg, kind)
+    present = present_columns(con, cfg, path, "csv")
+    sql = checks.checked_sql(
+        reader_sql(cfg, path, "csv", checks.columns, present),
+        "csv",
+        horizon=datetime(2024, 6, 1, tzinfo=UTC),
+        earliest="2000-01-01",
+        shortcut=shortcut,
+    )
+    return con.execute(f"SELECT reason, message FROM ({sql})").fetchall()
+
+
+def _same_both_ways(folder: Path, kind: str, columns: list[str], rows: list[list[str]]) -> list:
+    """Write ``rows`` as a CSV file, stage it with and without the one-test pass and
+    assert that every record gets the same reason and message; returns them."""
+    cfg = load_config(make_config(folder))
+    path = folder / "f.csv"
+    with open(path, "w", newline="", encoding="utf-8") as fh:
+        w = csv.writer(fh, lineterminator="\n")
+        w.writerow(columns)
+        w.writerows(rows)
+    fast = _reasons(cfg, kind, path, shortcut=True)
+    assert fast == _reasons(cfg, kind, path, shortcut=False)
+    return fast
+
+
+passed: list[int] = []
+
+
+@settings(max_examples=40, deadline=None, suppress_health_check=[HealthCheck.too_slow])
+@given(st.data())
+def _same_reasons(data):
+    from conftest import OUTCOME_COLUMNS
+
+    kind = data.draw(st.sampled_from(["decisions", "outcomes"]))
+    columns = DECISION_COLUMNS if kind == "decisions" else OUTCOME_COLUMNS
+    rows = data.draw(st.lists(_edge_record(kind), min_size=1, max_size=20))
+    with tempfile.TemporaryDirectory() as tmp:
+        fast = _same_both_ways(Path(tmp), kind, columns, rows)
+    passed.append(sum(reason is None for reason, _ in fast))
+
+
+def test_the_one_test_pass_gives_the_same_reasons_as_the_ordered_checks():
+    passed.clear()
+    _same_reasons()
+    assert sum(passed) > 20  # the examples include many records that pass
+
+
+@pytest.mark.parametrize("kind", ["decisions", "outcomes"])
+def test_every_single_edge_value_gets_the_same_reason_either_way(tmp_path, kind):
+    """Each field of a valid record set to each of its edge values in turn (one fault
+    per record): the one-test pass must agree with the ordered checks on every record."""
+    from conftest import OUTCOME_COLUMNS, outcome_row
+
+    columns = DECISION_COLUMNS if kind == "decisions" else OUTCOME_COLUMNS
+    rows = []
+    for c in columns:
+        for value in [*_EDGE[_COLUMN_EDGE.get(c, "level")], "", " ", "x"]:
+            row = (decision_row if kind == "decisions" else outcome_row)(len(rows))
+            row[c] = value
+            rows.append([row[k] for k in columns])
+    fast = _same_both_ways(tmp_path, kind, columns, rows)
+    reasons = {reason for reason, _ in fast}
+    assert None in reasons and len(reasons) >= (8 if kind == "decisions" else 4)
