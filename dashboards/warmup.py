@@ -50,6 +50,7 @@ def _warm(config_path: str | None) -> None:
     from dashboards import charts
     from monitor import dashboard_data as dd
     from monitor.config import load_config
+    from monitor.dashboard_serve import server_started
 
     config = load_config(config_path)
     # The overview's own read: first open of the store file (DuckDB catalog, OS cache).
@@ -66,18 +67,7 @@ def _warm(config_path: str | None) -> None:
     pa.Table.from_pandas(rows.drop(columns=["R_s_trend"]), preserve_index=False)
     # ui's st.cache_data functions belong to the runtime that exists when ui is first
     # imported; the server's warm-up starts once the server is up (dashboard_serve).
-    if _runtime_started(RUNTIME_WAIT_S):
+    if server_started(RUNTIME_WAIT_S):
         # The overview page's first read, as a new session makes it (no period chosen,
         # all teams): a visit within ui.CACHE_TTL_S of the start finds it cached.
         ui.prefetch(dd.overview, None, team=None)
-
-
-def _runtime_started(timeout_s: float) -> bool:
-    from streamlit import runtime
-
-    deadline = time.monotonic() + timeout_s
-    while not runtime.exists():
-        if time.monotonic() > deadline:
-            return False
-        time.sleep(0.05)
-    return True

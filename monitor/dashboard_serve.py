@@ -42,7 +42,7 @@ def _warm(app: str, argv: list[str]) -> None:
     # Python threads share one core: warming during Streamlit's own start would only
     # delay it.  Once the server is up, the warm-up runs while the browser loads and
     # compiles the front end (another process, another core).
-    if not _server_started(SERVER_WAIT_S):
+    if not server_started(SERVER_WAIT_S):
         return
     try:
         from dashboards.warmup import warm
@@ -52,7 +52,8 @@ def _warm(app: str, argv: list[str]) -> None:
     log.info("dashboard warm-up done in %.2f s", warm(app_config_path(argv)))
 
 
-def _server_started(timeout_s: float) -> bool:
+def server_started(timeout_s: float) -> bool:
+    """Wait up to ``timeout_s`` for this process's Streamlit runtime to be up."""
     from streamlit import runtime
     from streamlit.runtime import RuntimeState
 

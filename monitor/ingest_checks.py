@@ -90,10 +90,11 @@ class Checks:
     # each column its trimmed text (t_<alias>) or its number (c_<alias>; DuckDB's cast
     # to DOUBLE ignores surrounding whitespace itself), the second the parsed value.
 
-    def _pre_expr(self, c: FileColumn) -> str | None:
-        """The first-layer expression of column ``c`` (None: parsed straight from the text)."""
+    def _pre_column(self, c: FileColumn) -> tuple[str, str] | None:
+        """(name, expression) of column ``c``'s first layer (None: parsed straight
+        from the text)."""
         if c.role in ("id", "maker", "team"):
-            return f"{_v(c.alias)} AS t_{c.alias}"
+            return f"t_{c.alias}", _v(c.alias)
         if c.role == "value":
             numeric = not self._value_spec()[0]
         elif c.role == "cue":
@@ -102,8 +103,8 @@ class Checks:
         else:
             return None
         if numeric:
-            return f"TRY_CAST({c.alias} AS DOUBLE) AS c_{c.alias}"
-        return f"{_v(c.alias)} AS t_{c.alias}"
+            return f"c_{c.alias}", f"TRY_CAST({c.alias} AS DOUBLE)"
+        return f"t_{c.alias}", _v(c.alias)
 
     def _value_expr(self, alias: str, values: dict[str, float]) -> str:
         if values:
@@ -212,11 +213,11 @@ class Checks:
         reason = "CASE " + " ".join(f"WHEN {w} THEN '{r}'" for w, r, _ in checks) + " END"
         if shortcut:
             reason = f"CASE WHEN {' AND '.join(self._passes(horizon, earliest))} THEN NULL ELSE {reason} END"
-        pre = [e for e in map(self._pre_expr, self.columns) if e is not None]
-        working = ", ".join(e.rsplit(" AS ", 1)[1] for e in pre)
+        pre = [nc for nc in map(self._pre_column, self.columns) if nc is not None]
+        working = ", ".join(name for name, _ in pre)
         aliases = ", ".join(c.alias for c in self.columns)
         return (
-            f"WITH pre AS (SELECT *, {', '.join(pre)} FROM ({reader})), "
+            f"WITH pre AS (SELECT *, {', '.join(f'{e} AS {n}' for n, e in pre)} FROM ({reader})), "
             f"parsed AS (SELECT *, {', '.join(parsed)} FROM pre), "
             f"checked AS (SELECT parsed.*, {reason} AS reason FROM parsed) "
             f"SELECT is_blank, "

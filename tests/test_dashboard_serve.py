@@ -18,6 +18,7 @@ from streamlit.testing.v1 import AppTest
 from test_dashboard import APP, REPO, build_demo
 
 from monitor import dashboard_data as dd
+from monitor import dashboard_serve
 from monitor.dashboard_serve import app_config_path, start_warmup
 
 # The dashboards folder is not an installed package (the app puts it on sys.path itself).
@@ -54,7 +55,7 @@ def test_a_warm_up_that_cannot_read_the_store_does_not_raise(tmp_path):
 def test_warm_up_leaves_the_overview_pages_first_read_cached(demo_config, monkeypatch):
     monkeypatch.setenv("CUEWATCH_CONFIG", str(demo_config))
     # No Streamlit runtime in a test process: let the warm-up fill the cache anyway.
-    monkeypatch.setattr(warmup, "_runtime_started", lambda timeout_s: True)
+    monkeypatch.setattr(dashboard_serve, "server_started", lambda timeout_s: True)
     ui._cached.clear()
     warmup.warm(str(demo_config))
 

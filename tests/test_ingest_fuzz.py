@@ -15,16 +15,19 @@ import io
 import json
 import shutil
 import tempfile
-from datetime import UTC
+from datetime import UTC, datetime
 from pathlib import Path
 
+import duckdb
 import pytest
-from conftest import DECISION_COLUMNS, decision_row, make_config
+from conftest import DECISION_COLUMNS, OUTCOME_COLUMNS, decision_row, make_config, outcome_row
 from hypothesis import HealthCheck, Phase, given, settings
 from hypothesis import strategies as st
 
 from monitor.config import load_config
 from monitor.ingest import ingest
+from monitor.ingest_checks import build_checks, reader_sql
+from monitor.ingest_files import present_columns
 from monitor.store import Store
 
 # Any unicode except lone surrogates (they cannot be encoded) and line breaks, which
@@ -229,8 +232,6 @@ _COLUMN_EDGE = {
 def _edge_record(draw, kind: str) -> list[str]:
     """A valid record with zero, one or two fields replaced by a value at the edge of
     that field's checks (or, now and then, any text)."""
-    from conftest import OUTCOME_COLUMNS, outcome_row
-
     row = (decision_row if kind == "decisions" else outcome_row)(draw(st.integers(0, 99)))
     columns = DECISION_COLUMNS if kind == "decisions" else OUTCOME_COLUMNS
     for c in draw(st.lists(st.sampled_from(columns), max_size=2)):
@@ -240,13 +241,6 @@ def _edge_record(draw, kind: str) -> list[str]:
 
 
 def _reasons(cfg, kind: str, path: Path, shortcut: bool) -> list:
-    from datetime import datetime
-
-    import duckdb
-
-    from monitor.ingest_checks import build_checks, reader_sql
-    from monitor.ingest_files import present_columns
-
     con = duckdb.connect()
     con.execute(f"SET TimeZone = '{cfg.decisions.timezone}'")
     checks = build_checks(cfg, kind)
@@ -281,8 +275,6 @@ passed: list[int] = []
 @settings(max_examples=40, deadline=None, suppress_health_check=[HealthCheck.too_slow])
 @given(st.data())
 def _same_reasons(data):
-    from conftest import OUTCOME_COLUMNS
-
     kind = data.draw(st.sampled_from(["decisions", "outcomes"]))
     columns = DECISION_COLUMNS if kind == "decisions" else OUTCOME_COLUMNS
     rows = data.draw(st.lists(_edge_record(kind), min_size=1, max_size=20))
@@ -301,8 +293,6 @@ def test_the_one_test_pass_gives_the_same_reasons_as_the_ordered_checks():
 def test_every_single_edge_value_gets_the_same_reason_either_way(tmp_path, kind):
     """Each field of a valid record set to each of its edge values in turn (one fault
     per record): the one-test pass must agree with the ordered checks on every record."""
-    from conftest import OUTCOME_COLUMNS, outcome_row
-
     columns = DECISION_COLUMNS if kind == "decisions" else OUTCOME_COLUMNS
     rows = []
     for c in columns:
