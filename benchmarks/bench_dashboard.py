@@ -12,7 +12,7 @@ fresh process so nothing is cached:
     dashboard as `cuewatch dashboard` starts it, and a one-line Streamlit app
     (``floor_app_*``: the cost every Streamlit page pays on this machine - server,
     websocket, front end); with ``--unwarmed`` also the dashboard under plain
-    `streamlit run` (no start-up warm-up, as before ``monitor.dashboard_serve``).  Per
+    `streamlit run` (no start-up warm-up, as before ``monitor.dashboard.serve``).  Per
     server: ``*_server_up_s`` from launch until its health check answers;
     ``*_first_render_s``: the first tab on the fresh server (the cold visit), from
     navigation until the flagged list is shown and the run has finished;
@@ -49,7 +49,7 @@ _DATA_CHILD = """
 import sys, time
 t0 = time.perf_counter()
 from monitor.config import load_config
-from monitor import dashboard_data as dd
+from monitor.dashboard import data as dd
 cfg = load_config(sys.argv[1])
 t1 = time.perf_counter()
 view = dd.overview(cfg, dd.window_range(cfg))
@@ -144,7 +144,7 @@ def _render_times(port: int, text: str, loads: int) -> list[float]:
 
 def _server_commands(cfg: Path, floor_app: Path, port: int, unwarmed: bool) -> dict:
     from monitor.config import load_config
-    from monitor.dashboard_launch import launch_command
+    from monitor.dashboard.start import launch_command
 
     runs = {
         "browser": [sys.executable, "-m", "monitor", "--config", str(cfg), "dashboard",

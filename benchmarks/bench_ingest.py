@@ -83,8 +83,8 @@ def _bench_config(store: Path):
 
 
 def child_ingest(store: Path, csv_path: Path, profile: bool) -> dict:
-    from monitor.ingest import ingest
-    from monitor.store import Store
+    from monitor.ingest.batches import ingest
+    from monitor.store.connection import Store
 
     cfg = _bench_config(store)
     Store(cfg).init()
@@ -112,8 +112,8 @@ def _install_statement_timer(timings: list[tuple[str, float]]) -> None:
     """Wrap the writer connection so every execute() is timed (profiling only)."""
     import contextlib
 
-    from monitor import ingest as ingest_module
-    from monitor.store import Store
+    from monitor.ingest import batches as ingest_module
+    from monitor.store.connection import Store
 
     class Timed:
         def __init__(self, con):

@@ -105,7 +105,7 @@ def build_store(folder: Path, rows: int, days: int, makers: int) -> Path:
     """An initialised store holding ``rows`` decisions over ``days`` days, outcomes for
     half of the decisions older than 30 days, and no dirty buckets."""
     from monitor.config import load_config
-    from monitor.store import Store
+    from monitor.store.connection import Store
 
     cfg_path = write_config(folder)
     config = load_config(cfg_path)
@@ -198,7 +198,7 @@ def _peak_rss_kib() -> float:
 
 def _child_refit(cfg_path: str, full: bool, queue) -> None:
     from monitor.config import load_config
-    from monitor.windows import refit
+    from monitor.refit.windows import refit
 
     config = load_config(cfg_path)
     t0, c0 = time.perf_counter(), time.process_time()

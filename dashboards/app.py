@@ -1,6 +1,6 @@
 """cuewatch oversight dashboard: `streamlit run dashboards/app.py -- --config FILE`.
 
-Started by `cuewatch dashboard` (monitor.dashboard_data.launch).  Read-only apart from
+Started by `cuewatch dashboard` (monitor.dashboard.data.launch).  Read-only apart from
 acknowledging an alert, which goes through the store's single writer.
 """
 

@@ -1,4 +1,4 @@
-"""Altair charts for the dashboard pages: frames from monitor.dashboard_data in, charts out.
+"""Altair charts for the dashboard pages: frames from monitor.dashboard.data in, charts out.
 
 No Streamlit and no store access here, so each chart can be built in a test.
 """
@@ -141,7 +141,7 @@ def weight_panels(weights: pd.DataFrame, spans: pd.DataFrame, columns: int = 3) 
 
 def lens_chart(lens: pd.DataFrame) -> alt.Chart:
     """The lens figures over window ends, one line each; tooltips carry sample sizes."""
-    from monitor.dashboard_data import LENS_FIGURES
+    from monitor.dashboard.data import LENS_FIGURES
 
     df = lens.copy()
     df["figure"] = df["figure"].map(LENS_FIGURES)

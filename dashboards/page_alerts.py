@@ -6,7 +6,7 @@ import pandas as pd
 import streamlit as st
 
 from dashboards import ui
-from monitor import dashboard_data as dd
+from monitor.dashboard import data as dd
 
 st.title("Alerts")
 alerts = ui.load(dd.alerts_table)

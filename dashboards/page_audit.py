@@ -5,10 +5,11 @@ from __future__ import annotations
 import streamlit as st
 
 from dashboards import ui
-from monitor import dashboard_data as dd
+from monitor.dashboard import data as dd
+from monitor.dashboard import download
 
 st.title("Audit pack")
-if not dd.audit_available():
+if not download.audit_available():
     st.info(
         "The audit export is not installed in this version of cuewatch, so no pack can be "
         "built here yet. The other pages work as usual."
@@ -21,14 +22,14 @@ if span is None:
     st.stop()
 ui.caution()
 with st.form("audit"):
-    quarter = st.selectbox("Quarter", dd.quarters(span))
+    quarter = st.selectbox("Quarter", download.quarters(span))
     as_of = st.text_input("As of (ISO 8601; empty = everything ingested so far)", "")
     formats = st.multiselect("Formats", ["csv", "parquet", "xlsx", "html"], ["csv", "html"])
     build = st.form_submit_button("Build the pack")
 if build:
     with st.spinner("Building…"):
         try:
-            data, result = dd.build_audit_pack(ui.config(), quarter, as_of or None, formats)
+            data, result = download.build_audit_pack(ui.config(), quarter, as_of or None, formats)
         except Exception as exc:  # the export's own user errors: show them, do not crash
             st.error(
                 f"The pack could not be built: {str(exc).splitlines()[0] if str(exc) else exc}"

@@ -5,7 +5,7 @@ from __future__ import annotations
 import streamlit as st
 
 from dashboards import charts, ui
-from monitor import dashboard_data as dd
+from monitor.dashboard import data as dd
 
 st.title("Forbidden-cue evidence")
 ui.caution()

@@ -6,10 +6,10 @@ import altair as alt
 import streamlit as st
 
 from dashboards import ui
-from monitor import dashboard_data as dd
+from monitor.dashboard.health import data_health
 
 st.title("Data health")
-health = ui.load(dd.data_health)
+health = ui.load(data_health)
 
 cols = st.columns(3)
 if health.last_nightly:

@@ -1,7 +1,7 @@
 """Shared page plumbing: which configuration, cached reads, a busy store, the caution box.
 
 Reads go through ``load``: one short-lived read-only connection per call (inside
-``monitor.dashboard_data``), cached for a short time under a key that includes the
+``monitor.dashboard.data``), cached for a short time under a key that includes the
 store file's modification time, so a nightly write shows up on the next rerun and no
 connection is ever held across reruns.
 """
@@ -9,6 +9,7 @@ connection is ever held across reruns.
 from __future__ import annotations
 
 import argparse
+import importlib
 import os
 import sys
 import time
@@ -17,9 +18,11 @@ from typing import Any
 
 import streamlit as st
 
-from monitor import dashboard_data as dd
+from monitor.cautions import CAUTION
 from monitor.config import ENV_VAR, Config, ConfigError, load_config
-from monitor.store import StoreBusy, StoreMismatch
+from monitor.dashboard import data as dd
+from monitor.store.connection import StoreBusy
+from monitor.store.schema import StoreMismatch
 
 CACHE_TTL_S = 30
 BUSY_RETRIES = 3
@@ -49,14 +52,21 @@ def config() -> Config:
 
 
 @st.cache_data(ttl=CACHE_TTL_S, show_spinner=False, max_entries=256)
-def _cached(fn_name: str, path: str | None, stamp: tuple, args: tuple, kwargs: tuple) -> Any:
-    # ``stamp`` is only part of the key: a new store mtime means a fresh read.
-    return getattr(dd, fn_name)(_load_config(path), *args, **dict(kwargs))
+def _cached(
+    fn_module: str, fn_name: str, path: str | None, stamp: tuple, args: tuple, kwargs: tuple
+) -> Any:
+    # ``stamp`` is only part of the key: a new store mtime means a fresh read.  The
+    # function travels by name (cache keys must hash); only the dashboard's own
+    # read modules are looked up.
+    if not fn_module.startswith("monitor.dashboard."):
+        raise ValueError(f"not a dashboard read: {fn_module}.{fn_name}")
+    fn = getattr(importlib.import_module(fn_module), fn_name)
+    return fn(_load_config(path), *args, **dict(kwargs))
 
 
 def _read(cfg: Config, fn: Callable[..., Any], args: tuple, kwargs: dict) -> Any:
     key_kwargs = tuple(sorted(kwargs.items()))
-    return _cached(fn.__name__, config_path(), dd.store_stamp(cfg), args, key_kwargs)
+    return _cached(fn.__module__, fn.__name__, config_path(), dd.store_stamp(cfg), args, key_kwargs)
 
 
 def prefetch(fn: Callable[..., Any], *args: Any, **kwargs: Any) -> None:
@@ -67,7 +77,7 @@ def prefetch(fn: Callable[..., Any], *args: Any, **kwargs: Any) -> None:
 
 
 def load(fn: Callable[..., Any], *args: Any, **kwargs: Any) -> Any:
-    """Call ``dashboard_data.<fn>(config, *args, **kwargs)`` through the cache.
+    """Call ``fn(config, *args, **kwargs)`` (a read of ``monitor.dashboard``) through the cache.
 
     While the nightly job holds the store the page says so and retries a few times;
     if it is still busy the page shows a retry button and stops (never an exception).
@@ -96,7 +106,7 @@ def load(fn: Callable[..., Any], *args: Any, **kwargs: Any) -> Any:
 
 def caution() -> None:
     """The caution every forbidden-cue view carries."""
-    st.warning(dd.CAUTION, icon=":material/balance:")
+    st.warning(CAUTION, icon=":material/balance:")
 
 
 def number(v: Any, digits: int = 2) -> str:

@@ -6,7 +6,7 @@ opens the store for the first time, compiles Altair's schema validator and lets
 Streamlit walk every loaded module once (its one-time "is this a REPL" check).  Measured
 on the 5M-decision benchmark store this was ~1.5 s of the first visit and nothing of the
 later ones.  ``warm`` does the same work in the server process once it is up
-(``monitor.dashboard_serve`` calls it from a background thread), so the first visitor
+(``monitor.dashboard.serve`` calls it from a background thread), so the first visitor
 finds it done, and leaves the overview's first read in the pages' own cache
 (``ui.prefetch``: the same key and time to live as any page read).  It changes nothing
 a page shows: the store is only read, and every failure is swallowed (the page then
@@ -48,9 +48,9 @@ def _warm(config_path: str | None) -> None:
 
     # isort: split
     from dashboards import charts
-    from monitor import dashboard_data as dd
     from monitor.config import load_config
-    from monitor.dashboard_serve import server_started
+    from monitor.dashboard import data as dd
+    from monitor.dashboard.runtime import server_started
 
     config = load_config(config_path)
     # The overview's own read: first open of the store file (DuckDB catalog, OS cache).

@@ -15,6 +15,7 @@ from pathlib import Path
 import click
 
 from monitor import __version__
+from monitor.cautions import CAUTION
 from monitor.config import ENV_VAR, Config, ConfigError, load_config
 
 EXIT_USER_ERROR = 2
@@ -23,12 +24,13 @@ EXIT_USER_ERROR = 2
 def user_errors() -> tuple[type[Exception], ...]:
     """Exception types that are the user's to fix (one line, exit 2).  Imported here,
     not at the top, so that `cuewatch --help` does not load every stage."""
-    from monitor.alerts import AlertUsageError
-    from monitor.audit import ExportUsageError
-    from monitor.ingest import IngestUsageError
-    from monitor.ingest_checks import FileRejected
+    from monitor.assess.alerts import AlertUsageError
+    from monitor.audit.pack import ExportUsageError
+    from monitor.ingest.checks import FileRejected
+    from monitor.ingest.files import IngestUsageError
     from monitor.schedule import ScheduleUsageError
-    from monitor.store import StoreBusy, StoreMismatch
+    from monitor.store.connection import StoreBusy
+    from monitor.store.schema import StoreMismatch
 
     return (
         ConfigError,
@@ -96,7 +98,7 @@ def main(ctx: click.Context, config_path: str | None) -> None:
 @handles_user_errors
 def init(obj: Context, as_json: bool) -> None:
     """Create or migrate the store (a no-op when it is up to date)."""
-    from monitor.store import Store
+    from monitor.store.connection import Store
 
     result = Store(obj.config).init()
     if as_json:
@@ -128,7 +130,7 @@ def init(obj: Context, as_json: bool) -> None:
 @handles_user_errors
 def ingest(obj: Context, paths: tuple[str, ...], kind: str | None, as_json: bool) -> None:
     """Append decision / outcome files (or the landing folders; '-' = JSON Lines on stdin)."""
-    from monitor.ingest import ingest as run_ingest
+    from monitor.ingest.batches import ingest as run_ingest
 
     summary = _with_progress(
         lambda on_file: run_ingest(obj.config, paths, kind=kind, on_file=on_file),
@@ -183,7 +185,7 @@ def format_ingest_summary(summary) -> str:
 @handles_user_errors
 def refit(obj: Context, full: bool, as_json: bool) -> None:
     """Bring the rolling window fits up to date (incremental by default)."""
-    from monitor.windows import refit as run_refit
+    from monitor.refit.windows import refit as run_refit
 
     summary = run_refit(obj.config, full=full)
     if as_json:
@@ -211,7 +213,7 @@ def fits(
     obj: Context, decision_maker: str | None, latest: bool, scope: str | None, as_json: bool
 ) -> None:
     """Show stored window fits: weights, consistency, achievement."""
-    from monitor.windows import read_fits
+    from monitor.refit.fits_read import read_fits
 
     rows = read_fits(obj.config, decision_maker=decision_maker, latest=latest, scope=scope)
     if as_json:
@@ -275,7 +277,7 @@ def format_fits_table(rows: list[dict]) -> str:
 @handles_user_errors
 def dashboard(obj: Context, port: int) -> None:
     """Start the oversight dashboard on 127.0.0.1 (read-only; Ctrl-C stops it)."""
-    from monitor.dashboard_data import launch
+    from monitor.dashboard.start import launch
 
     sys.exit(launch(obj.config, port=port))
 
@@ -316,7 +318,7 @@ def export(
     as_json: bool,
 ) -> None:
     """Write the quarterly audit tables (CSV, Parquet, XLSX, HTML) with a manifest."""
-    from monitor.audit import export as run_export
+    from monitor.audit.pack import export as run_export
 
     result = run_export(
         obj.config,
@@ -340,7 +342,7 @@ def export(
 @handles_user_errors
 def assess(obj: Context, force: bool, as_json: bool) -> None:
     """Evaluate the policy on the fits, update alerts and notify."""
-    from monitor.alerts import assess as run_assess
+    from monitor.assess.alerts import assess as run_assess
 
     summary = run_assess(obj.config, force=force)
     if as_json:
@@ -373,7 +375,7 @@ def format_assess_summary(summary) -> str:
 @handles_user_errors
 def alerts(obj: Context, state: str | None, history: bool, as_json: bool) -> None:
     """List alerts (forbidden-cue use, proxies, drift, consistency, achievement)."""
-    from monitor.alerts import list_alerts
+    from monitor.assess.alerts import list_alerts
 
     docs = list_alerts(obj.config, state, history=history)
     if as_json:
@@ -393,10 +395,7 @@ def alerts(obj: Context, state: str | None, history: bool, as_json: bool) -> Non
             f"n {ev.get('n')}"
             + (f"  ack by {d['acknowledged_by']}" if d["acknowledged_by"] else "")
         )
-    click.echo(
-        "Forbidden-cue findings are statistical associations in observational data, not proof of "
-        "intent or of unlawful treatment; consult your compliance and legal advisers."
-    )
+    click.echo(CAUTION)
 
 
 @main.command()
@@ -408,7 +407,7 @@ def alerts(obj: Context, state: str | None, history: bool, as_json: bool) -> Non
 @handles_user_errors
 def ack(obj: Context, alert_id: int, by: str, note: str, as_json: bool) -> None:
     """Acknowledge an open alert with who and a note."""
-    from monitor.alerts import acknowledge
+    from monitor.assess.alerts import acknowledge
 
     doc = acknowledge(obj.config, alert_id, by, note)
     if as_json:
@@ -455,7 +454,7 @@ def schedule(obj: Context) -> None:
     )
     cfg = obj.config
     crontab_to_trigger(cfg.schedule.cron, cfg.schedule.timezone)  # validate before starting
-    from monitor.store import utc_now
+    from monitor.store.rules import utc_now
 
     nxt = next_fire_times(cfg.schedule.cron, cfg.schedule.timezone, utc_now(), 1)
     click.echo(
@@ -526,15 +525,12 @@ def demo(
             click.echo(
                 f"  #{a['id']} {a['kind']} {a['decision_maker']} {a['cue']} since window ending {a['opened_window_end']}"
             )
-    click.echo(
-        "Forbidden-cue findings are statistical associations, not proof of intent or unlawful "
-        "treatment; consult your compliance and legal advisers."
-    )
+    click.echo(CAUTION)
     click.echo(f"Try: cuewatch --config {result['config']} fits --latest")
     if no_dashboard:
         return
     from monitor.config import load_config
-    from monitor.dashboard_data import launch
+    from monitor.dashboard.start import launch
 
     click.echo(f"Starting the dashboard on http://127.0.0.1:{port} (Ctrl-C stops it) ...")
     sys.exit(launch(load_config(result["config"]), port=port))

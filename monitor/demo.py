@@ -70,7 +70,7 @@ def play(
     """Drop the scenario's daily files into the landing folders and run the nightly
     job: once for the backfill, then once per day.  Returns the nightly summaries."""
     from monitor.nightly import run_nightly
-    from monitor.store import Store
+    from monitor.store.connection import Store
     from synthetic_logs.ostwyn import day_files
 
     Store(config).init()
@@ -120,13 +120,13 @@ def run_demo(
     config = prepare(demo_dir, days=days, n_handlers=n_handlers)
     say("Playing the daily logs into the landing folders and running the nightly job:")
     summaries = play(config, demo_dir / "scenario", say=say, tail_days=tail_days)
-    from monitor.alerts import list_alerts
+    from monitor.assess.alerts import list_alerts
 
     alerts = list_alerts(config)
     out = {"config": str(config.source), "nightly_runs": len(summaries), "alerts": alerts}
     if export:
         try:
-            from monitor.audit import export as run_export
+            from monitor.audit.pack import export as run_export
         except ImportError:
             run_export = None
         if run_export is not None:

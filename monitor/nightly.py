@@ -13,7 +13,9 @@ from dataclasses import dataclass, field
 from datetime import datetime
 
 from monitor.config import Config
-from monitor.store import Store, StoreMismatch, utc_now
+from monitor.store.connection import Store
+from monitor.store.rules import utc_now
+from monitor.store.schema import StoreMismatch
 
 log = logging.getLogger("cuewatch.nightly")
 
@@ -35,9 +37,9 @@ def run_nightly(config: Config, *, now: datetime | None = None) -> NightlySummar
     """Run ingest -> refit -> assess once.  A failed file does not stop the run (it is
     recorded in ``batches`` and reported); any other error marks the run failed and is
     re-raised after being recorded."""
-    from monitor.alerts import assess
-    from monitor.ingest import ingest
-    from monitor.windows import refit
+    from monitor.assess.alerts import assess
+    from monitor.ingest.batches import ingest
+    from monitor.refit.windows import refit
 
     store = Store(config)
     run_id = uuid.uuid4().hex[:12]

@@ -44,14 +44,6 @@ from monitor.config import Config
 
 log = logging.getLogger(__name__)
 
-__all__ = [
-    "ScheduleSummary",
-    "ScheduleUsageError",
-    "crontab_to_trigger",
-    "next_fire_times",
-    "run_schedule",
-]
-
 _FIELDS = (  # name, low, high (standard cron bounds)
     ("minute", 0, 59),
     ("hour", 0, 23),

@@ -12,10 +12,10 @@ import pandas as pd
 import pytest
 from conftest import REPO
 
-from monitor.audit import export
+from monitor.audit.pack import export
 from monitor.config import load_config
-from monitor.ingest import ingest
-from monitor.store import Store
+from monitor.ingest.batches import ingest
+from monitor.store.connection import Store
 
 CHROMIUM = Path("/usr/bin/chromium")
 ARTIFACTS = REPO / "test-artifacts"

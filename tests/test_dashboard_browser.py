@@ -14,8 +14,8 @@ import urllib.request
 from pathlib import Path
 
 import pytest
-from store_rows import read_store as sql
-from test_dashboard import REPO, build_demo, copy_store
+from helpers.monthly_demo import REPO, build_demo, copy_store
+from helpers.store_rows import read_store as sql
 
 CHROMIUM = Path("/usr/bin/chromium")
 ARTIFACTS = REPO / "test-artifacts"

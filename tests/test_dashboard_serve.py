@@ -14,12 +14,12 @@ import urllib.request
 from pathlib import Path
 
 import pytest
+from helpers.monthly_demo import APP, REPO, build_demo
 from streamlit.testing.v1 import AppTest
-from test_dashboard import APP, REPO, build_demo
 
-from monitor import dashboard_data as dd
-from monitor import dashboard_serve
-from monitor.dashboard_serve import app_config_path, start_warmup
+from monitor.dashboard import data as dd
+from monitor.dashboard import runtime
+from monitor.dashboard.serve import app_config_path, start_warmup
 
 # The dashboards folder is not an installed package (the app puts it on sys.path itself).
 if str(REPO) not in sys.path:
@@ -55,7 +55,7 @@ def test_a_warm_up_that_cannot_read_the_store_does_not_raise(tmp_path):
 def test_warm_up_leaves_the_overview_pages_first_read_cached(demo_config, monkeypatch):
     monkeypatch.setenv("CUEWATCH_CONFIG", str(demo_config))
     # No Streamlit runtime in a test process: let the warm-up fill the cache anyway.
-    monkeypatch.setattr(dashboard_serve, "server_started", lambda timeout_s: True)
+    monkeypatch.setattr(runtime, "server_started", lambda timeout_s: True)
     ui._cached.clear()
     warmup.warm(str(demo_config))
 
@@ -74,7 +74,14 @@ def test_warm_up_leaves_the_overview_pages_first_read_cached(demo_config, monkey
     assert at.title[0].value == "Team at a glance" and len(at.dataframe[0].value) > 0
     assert calls == [], "the page's first overview read missed the warmed cache"
     # A read with other arguments is not in the cache: the check above can fail.
-    ui._cached("overview", ui.config_path(), dd.store_stamp(ui.config()), (None,), (("team", "x"),))
+    ui._cached(
+        "monitor.dashboard.data",
+        "overview",
+        ui.config_path(),
+        dd.store_stamp(ui.config()),
+        (None,),
+        (("team", "x"),),
+    )
     assert len(calls) == 1
 
 

@@ -24,7 +24,7 @@ from conftest import (
     write_parquet,
 )
 
-from monitor.ingest_checks import REASONS
+from monitor.ingest.checks import REASONS
 
 # DESIGN.md, Contracts: "`ingest --json` prints one object: files (each with path, kind,
 # status ... and its counts), and the totals accepted, quarantined, duplicates,

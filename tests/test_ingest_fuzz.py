@@ -25,10 +25,10 @@ from hypothesis import HealthCheck, Phase, given, settings
 from hypothesis import strategies as st
 
 from monitor.config import load_config
-from monitor.ingest import ingest
-from monitor.ingest_checks import build_checks, reader_sql
-from monitor.ingest_files import present_columns
-from monitor.store import Store
+from monitor.ingest.batches import ingest
+from monitor.ingest.checks import build_checks, reader_sql
+from monitor.ingest.files import present_columns
+from monitor.store.connection import Store
 
 # Any unicode except lone surrogates (they cannot be encoded) and line breaks, which
 # would split a raw line; line breaks inside quoted CSV fields are drawn separately.
@@ -208,7 +208,7 @@ def test_fuzzed_jsonl_is_fully_accounted_for(sample):
 
 # --- the one-test pass for records that pass ------------------------------------------
 # Staging settles most records with one test on their parsed values and runs the
-# ordered checks only on the rest (monitor.ingest_checks.Checks.checked_sql).  The
+# ordered checks only on the rest (monitor.ingest.checks.Checks.checked_sql).  The
 # reason of every record must be the same as with the ordered checks alone.
 
 # Values at the edges of the test configuration's checks: ranges (score 0-100, amount

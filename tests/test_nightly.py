@@ -16,7 +16,7 @@ from conftest import run_cli, text
 
 from monitor.config import load_config
 from monitor.demo import prepare
-from monitor.windows import refit
+from monitor.refit.windows import refit
 from synthetic_logs.ostwyn import day_files
 
 FIRST_DAYS = 40  # calendar days of files present for the first run

@@ -17,7 +17,9 @@ import pytest
 from conftest import REPO, base_config, make_config, query, run_cli, text, write_config
 
 from monitor.config import load_config
-from monitor.store import Store, StoreBusy, StoreMismatch, latest_version, quote_ident
+from monitor.store.connection import Store, StoreBusy
+from monitor.store.rules import quote_ident
+from monitor.store.schema import StoreMismatch, latest_version
 
 
 def _init_json(cfg: Path) -> dict:
@@ -127,7 +129,7 @@ _HOLD_WRITER = textwrap.dedent(
     """
     import sys, time
     from monitor.config import load_config
-    from monitor.store import Store
+    from monitor.store.connection import Store
     cfg = load_config(sys.argv[1])
     with Store(cfg).writer() as con:
         con.execute("SELECT count(*) FROM decisions").fetchone()

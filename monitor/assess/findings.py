@@ -1,0 +1,283 @@
+"""Evaluate the policy checks on the stored window fits.
+
+Reads the window statistics that `refit` stored, re-derives each window's judge model
+from its sufficient statistics (``lens.fit_lens``), and runs the checks of
+``policy``: forbidden-cue use (direct and through proxies, with Benjamini-Hochberg
+control across decision-makers and forbidden cues of each window end), weight drift
+between non-overlapping windows, consistency and achievement floors.  The result is
+one row per (check, series, cue level, window): the ``policy_findings`` table.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+
+import numpy as np
+import pandas as pd
+
+from monitor.config import Config
+from monitor.stats.lens import LensFits, fit_lens
+from monitor.stats.moments import Moments
+from monitor.stats.policy import flag_forbidden, forbidden_cue_decomposition
+from monitor.stats.trends import achievement_floor, consistency_floor, weight_drift
+
+FINDING_COLUMNS = [
+    "check_kind",
+    "scope",
+    "decision_maker",
+    "team",
+    "cue",
+    "level",
+    "window_start",
+    "window_end",
+    "n",
+    "disparity",
+    "direct",
+    "indirect",
+    "std_disparity",
+    "std_weight",
+    "std_indirect",
+    "ci_low",
+    "ci_high",
+    "p_value",
+    "q_value",
+    "statistic",
+    "flagged",
+    "assessable",
+    "reason",
+]
+PROXY_COLUMNS = ["decision_maker", "cue", "level", "window_end", "proxy_cue", "part", "std_part"]
+JOINT = "(all cues)"
+
+
+@dataclass(frozen=True)
+class StoredWindows:
+    """The stored fits of one or more scopes, ordered by (scope, key, window_end)."""
+
+    meta: (
+        pd.DataFrame
+    )  # scope, decision_maker, team, window_start, window_end, n_decisions, n_linked, R_s, r_a
+    moments: Moments  # over (x, Ys)
+    fits: LensFits  # judge model re-derived from the moments
+
+
+def load_windows(
+    con, config: Config, scopes: tuple[str, ...] = ("decision_maker", "team")
+) -> StoredWindows:
+    names = config.design_columns()
+    p = len(names) + 1
+    placeholders = ", ".join("?" for _ in scopes)
+    df = con.execute(
+        "SELECT scope, decision_maker, team, window_start, window_end, n_decisions, n_linked, "
+        "R_s, r_a, cue_mean, comoment FROM fits "
+        f"WHERE scope IN ({placeholders}) ORDER BY scope, decision_maker, window_end",
+        list(scopes),
+    ).df()
+    m = len(df)
+    mean = np.array(df["cue_mean"].tolist(), dtype=float).reshape(m, p) if m else np.zeros((0, p))
+    co = (
+        np.array(df["comoment"].tolist(), dtype=float).reshape(m, p, p)
+        if m
+        else np.zeros((0, p, p))
+    )
+    moments = Moments(df["n_decisions"].to_numpy(dtype=float), mean, co)
+    fits = fit_lens(moments, None, names, min_rows=config.policy.min_rows)
+    meta = df.drop(columns=["cue_mean", "comoment"]).reset_index(drop=True)
+    # Keep the stored lens figures (they use the linked rows, which the moments here lack).
+    return StoredWindows(meta, moments, fits)
+
+
+def _base_rows(meta: pd.DataFrame, index: np.ndarray, kind: str) -> pd.DataFrame:
+    out = meta.iloc[index][["scope", "decision_maker", "team", "window_start", "window_end"]].copy()
+    out.insert(0, "check_kind", kind)
+    out["n"] = meta["n_decisions"].to_numpy()[index]
+    return out.reset_index(drop=True)
+
+
+def _std_scale(w: StoredWindows, col: int) -> np.ndarray:
+    """sd(x_col) / sd(Ys) per window: turns a raw weight into a standardised one."""
+    k = len(w.fits.names)
+    with np.errstate(invalid="ignore", divide="ignore"):
+        return np.sqrt(w.moments.comoment[:, col, col] / w.moments.comoment[:, k, k])
+
+
+def forbidden_findings(config: Config, w: StoredWindows) -> tuple[pd.DataFrame, pd.DataFrame]:
+    """Direct and proxy findings for every decision-maker window and forbidden cue."""
+    idx = np.flatnonzero(w.meta["scope"].to_numpy() == "decision_maker")
+    if not len(idx) or not config.policy.forbidden:
+        return pd.DataFrame(columns=FINDING_COLUMNS), pd.DataFrame(columns=PROXY_COLUMNS)
+    sub_m, sub_f = w.moments.take(idx), w.fits.take(idx)
+    decomps = [forbidden_cue_decomposition(sub_m, sub_f, cue) for cue in config.policy.forbidden]
+    # One evaluation family per window end: all decision-makers x forbidden cues.
+    ends = w.meta["window_end"].to_numpy()[idx]
+    family = pd.factorize(ends)[0]
+    tol = config.policy.tolerance
+    flags = flag_forbidden(decomps, tolerance=tol, fdr=config.policy.fdr, family=family)
+    proxy_tol = config.policy.proxy_tolerance or tol
+    if proxy_tol != tol:
+        flags_proxy = flag_forbidden(
+            decomps, tolerance=proxy_tol, fdr=config.policy.fdr, family=family
+        )
+    else:
+        flags_proxy = flags
+    names = list(w.fits.names)
+    frames, proxies = [], []
+    for d, fl, flp in zip(decomps, flags, flags_proxy, strict=True):
+        for j, column in enumerate(d.columns):
+            level = column.split("=", 1)[1] if "=" in column else None
+            col = names.index(column)
+            scale = _std_scale(w, col)[idx]
+            for kind in ("forbidden_direct", "forbidden_proxy"):
+                rows = _base_rows(
+                    w.meta.iloc[idx].reset_index(drop=True), np.arange(len(idx)), kind
+                )
+                rows["cue"] = d.cue
+                rows["level"] = level
+                rows["disparity"] = d.disparity[:, j]
+                rows["direct"] = d.direct[:, j]
+                rows["indirect"] = d.indirect[:, j]
+                rows["std_disparity"] = d.std_disparity[:, j]
+                rows["std_weight"] = d.std_direct[:, j]
+                rows["std_indirect"] = d.std_indirect[:, j]
+                if kind == "forbidden_direct":
+                    rows["ci_low"] = d.direct_ci_low[:, j] * scale
+                    rows["ci_high"] = d.direct_ci_high[:, j] * scale
+                    rows["p_value"] = d.direct_p[:, j]
+                    rows["q_value"] = fl.q_value
+                    rows["statistic"] = d.joint_F
+                    rows["flagged"] = fl.flagged
+                else:
+                    half = 1.959963984540054 * d.indirect_se[:, j] * scale
+                    rows["ci_low"] = d.std_indirect[:, j] - half
+                    rows["ci_high"] = d.std_indirect[:, j] + half
+                    rows["p_value"] = d.indirect_p[:, j]
+                    rows["q_value"] = flp.proxy_q_value
+                    rows["statistic"] = d.indirect_joint_F
+                    rows["flagged"] = flp.proxy_flagged
+                rows["assessable"] = fl.assessable
+                rows["reason"] = [r or None for r in d.reason]
+                frames.append(rows)
+            for pi, proxy in enumerate(d.proxies):
+                proxies.append(
+                    pd.DataFrame(
+                        {
+                            "decision_maker": w.meta["decision_maker"].to_numpy()[idx],
+                            "cue": d.cue,
+                            "level": level,
+                            "window_end": ends,
+                            "proxy_cue": proxy,
+                            "part": d.proxy_parts[:, j, pi],
+                            "std_part": d.std_proxy_parts[:, j, pi],
+                        }
+                    )
+                )
+    return pd.concat(frames, ignore_index=True), pd.concat(proxies, ignore_index=True)
+
+
+def _previous_window(meta: pd.DataFrame, length_days: int) -> np.ndarray:
+    """For each window, the index of the latest window of the same series that ends at
+    least ``length_days`` earlier (so the two do not overlap), or -1."""
+    prev = np.full(len(meta), -1)
+    ends = pd.to_datetime(meta["window_end"]).to_numpy()
+    gap = np.timedelta64(length_days, "D")
+    for _, g in meta.groupby(["scope", "decision_maker"], sort=False).indices.items():
+        e = ends[g]
+        pos = np.searchsorted(e, e - gap, side="right") - 1
+        prev[g] = np.where(pos >= 0, g[np.clip(pos, 0, None)], -1)
+    return prev
+
+
+def drift_findings(config: Config, w: StoredWindows) -> pd.DataFrame:
+    """Per-cue and joint Wald tests of weight change against the previous
+    non-overlapping window of the same series."""
+    prev = _previous_window(w.meta, config.windows.length_days)
+    cur = np.flatnonzero(prev >= 0)
+    if not len(cur):
+        return pd.DataFrame(columns=FINDING_COLUMNS)
+    first, second = w.fits.take(cur), w.fits.take(prev[cur])
+    drift = weight_drift(first, second)
+    alpha, min_std = config.policy.drift_alpha, config.policy.drift_min_std_change
+    frames = []
+    names = list(w.fits.names)
+    for j, column in enumerate(names):
+        rows = _base_rows(w.meta, cur, "drift")
+        scale = _std_scale(w, j)[cur]
+        rows["cue"] = column
+        rows["level"] = None
+        rows["direct"] = drift.change[:, j]
+        rows["std_weight"] = drift.change[:, j] * scale
+        half = 1.959963984540054 * drift.std_error[:, j] * scale
+        rows["ci_low"] = rows["std_weight"] - half
+        rows["ci_high"] = rows["std_weight"] + half
+        rows["p_value"] = drift.p_value[:, j]
+        rows["statistic"] = drift.z[:, j]
+        ok = np.isfinite(drift.p_value[:, j])
+        with np.errstate(invalid="ignore"):
+            rows["flagged"] = (
+                ok
+                & (drift.p_value[:, j] < alpha)
+                & (np.abs(rows["std_weight"].to_numpy()) >= min_std)
+            )
+        rows["assessable"] = ok
+        rows["reason"] = [r or None for r in drift.reason]
+        frames.append(rows)
+    joint = _base_rows(w.meta, cur, "drift")
+    joint["cue"] = JOINT
+    joint["level"] = None
+    joint["p_value"] = drift.joint_p
+    joint["statistic"] = drift.joint_stat
+    joint["flagged"] = False  # reported, not alerted: per-cue findings are actionable
+    joint["assessable"] = np.isfinite(drift.joint_p)
+    joint["reason"] = [r or None for r in drift.reason]
+    frames.append(joint)
+    return pd.concat(frames, ignore_index=True)
+
+
+def floor_findings(config: Config, w: StoredWindows) -> pd.DataFrame:
+    pol = config.policy
+    idx = np.flatnonzero(w.meta["scope"].to_numpy() == "decision_maker")
+    frames = []
+    stored = w.fits.take(idx)
+    meta = w.meta.iloc[idx].reset_index(drop=True)
+    if pol.consistency_floor is not None:
+        r_s = meta["R_s"].to_numpy(dtype=float)
+        check = consistency_floor(
+            _with(stored, R_s=r_s), floor=pol.consistency_floor, min_rows=pol.min_rows
+        )
+        rows = _base_rows(meta, np.arange(len(idx)), "consistency")
+        rows["cue"], rows["level"], rows["statistic"] = "R_s", None, r_s
+        rows["flagged"], rows["assessable"] = check.flagged, check.assessable
+        frames.append(rows)
+    if pol.achievement_floor is not None:
+        r_a = meta["r_a"].to_numpy(dtype=float)
+        n_linked = meta["n_linked"].to_numpy(dtype=float)
+        check = achievement_floor(
+            _with(stored, r_a=r_a, n_linked=n_linked),
+            floor=pol.achievement_floor,
+            min_linked=pol.achievement_min_linked,
+        )
+        rows = _base_rows(meta, np.arange(len(idx)), "achievement")
+        rows["n"] = n_linked.astype(int)
+        rows["cue"], rows["level"], rows["statistic"] = "r_a", None, r_a
+        rows["flagged"], rows["assessable"] = check.flagged, check.assessable
+        frames.append(rows)
+    return pd.concat(frames, ignore_index=True) if frames else pd.DataFrame(columns=FINDING_COLUMNS)
+
+
+def _with(fits: LensFits, **arrays) -> LensFits:
+    from dataclasses import replace
+
+    return replace(fits, **arrays)
+
+
+def evaluate(con, config: Config) -> tuple[pd.DataFrame, pd.DataFrame]:
+    """All findings on the stored fits: (policy_findings rows, policy_proxy_parts rows)."""
+    w = load_windows(con, config)
+    forbidden, proxies = forbidden_findings(config, w)
+    parts = [forbidden, drift_findings(config, w), floor_findings(config, w)]
+    parts = [p for p in parts if len(p)]
+    findings = (
+        pd.concat(parts, ignore_index=True) if parts else pd.DataFrame(columns=FINDING_COLUMNS)
+    )
+    findings = findings.reindex(columns=FINDING_COLUMNS)
+    return findings, proxies

@@ -1,0 +1,353 @@
+"""Ingest: validate decision and outcome files against the configuration and append
+them to the store, one transaction per file.
+
+The hot path is set-based SQL inside DuckDB (its own CSV / JSON / Parquet readers,
+one staging table per file, CASE expressions for the checks), so large files stream
+with bounded memory and no Python loop runs per row.  Every input record ends up in
+exactly one place: ``decisions`` / ``outcomes`` (accepted), ``quarantine`` (with a
+reason code and a one-line message) or the batch's duplicate count (identical to
+what is already stored).  Which files to read is decided in monitor.ingest.files, the
+per-record checks are built in monitor.ingest.checks and the write statements in
+monitor.ingest.writes; this module runs them, one file at a time.
+"""
+
+from __future__ import annotations
+
+import shutil
+import sys
+import tempfile
+from collections.abc import Callable, Iterable
+from dataclasses import asdict, dataclass, field
+from datetime import datetime, timedelta
+from pathlib import Path
+
+import duckdb
+
+from monitor import __version__
+from monitor.config import Config
+from monitor.ingest.checks import FileRejected, build_checks, reader_sql
+from monitor.ingest.files import (
+    IngestUsageError,
+    detect_format,
+    file_sha256,
+    plan_files,
+    present_columns,
+)
+from monitor.ingest.writes import (
+    classify_duplicates_sql,
+    insert_sql,
+    mark_dirty_sql,
+    quarantine_sql,
+)
+from monitor.store.connection import Store
+from monitor.store.rules import sql_literal, utc_now
+from monitor.store.schema import drop_temp_tables, empty_temp_table, stage_temp_table
+
+
+@dataclass
+class FileResult:
+    path: str
+    kind: str
+    status: str  # "ingested" | "skipped" | "failed"
+    batch_id: int | None = None
+    rows_read: int = 0
+    accepted: int = 0
+    quarantined: int = 0
+    duplicates: int = 0
+    quarantine_reasons: dict[str, int] = field(default_factory=dict)
+    message: str = ""
+
+
+@dataclass
+class IngestSummary:
+    files: list[FileResult]
+
+    @property
+    def accepted(self) -> int:
+        return sum(f.accepted for f in self.files)
+
+    @property
+    def quarantined(self) -> int:
+        return sum(f.quarantined for f in self.files)
+
+    @property
+    def duplicates(self) -> int:
+        return sum(f.duplicates for f in self.files)
+
+    @property
+    def skipped_files(self) -> int:
+        return sum(f.status == "skipped" for f in self.files)
+
+    @property
+    def failed_files(self) -> list[FileResult]:
+        return [f for f in self.files if f.status == "failed"]
+
+    @property
+    def quarantine_reasons(self) -> dict[str, int]:
+        out: dict[str, int] = {}
+        for f in self.files:
+            for k, v in f.quarantine_reasons.items():
+                out[k] = out.get(k, 0) + v
+        return dict(sorted(out.items()))
+
+    def to_json(self) -> dict:
+        """The `ingest --json` document (DESIGN.md, Contracts)."""
+        return {
+            "files": [asdict(f) for f in self.files],
+            "accepted": self.accepted,
+            "quarantined": self.quarantined,
+            "duplicates": self.duplicates,
+            "skipped_files": self.skipped_files,
+            "failed_files": len(self.failed_files),
+            "quarantine_reasons": self.quarantine_reasons,
+        }
+
+
+# --- the ingest itself ----------------------------------------------------------------
+
+
+def ingest(
+    config: Config,
+    paths: Iterable[str] = (),
+    *,
+    kind: str | None = None,
+    now: datetime | None = None,
+    on_file: Callable[[int, int, Path], None] | None = None,
+) -> IngestSummary:
+    """Ingest files (or the landing folders) into the store.
+
+    ``paths`` may contain '-' for JSON Lines on standard input (``kind`` required).
+    ``now`` fixes the clock for the future-timestamp check (tests).  ``on_file``
+    is called as (index, total, path) before each file (progress display).
+    Each file is one transaction: it is either fully in the store or not at all.
+    """
+    paths = list(paths)
+    stdin_tmp: Path | None = None
+    if "-" in paths:
+        if kind is None:
+            raise IngestUsageError("reading from standard input needs --kind decisions|outcomes.")
+        stdin_tmp = _spool_stdin()
+        paths = [str(stdin_tmp) if p == "-" else p for p in paths]
+    try:
+        plan = plan_files(config, paths, kind)
+        if any(k == "outcomes" for _, k in plan) and config.outcomes is None:
+            raise IngestUsageError("outcome files given but the configuration has no [outcomes].")
+        store = Store(config)
+        now = now or utc_now()
+        results: list[FileResult] = []
+        with store.writer() as con:
+            store.ensure_ready(con)
+            # Staging tables of a large file would otherwise grow in memory up to
+            # DuckDB's default limit (80% of RAM); past this limit they spill to the
+            # store's temporary folder (<store>.tmp), which keeps peak RSS bounded.
+            con.execute(f"SET memory_limit = {sql_literal(config.ingest.memory_limit)}")
+            for i, (path, k) in enumerate(plan):
+                if on_file:
+                    on_file(i, len(plan), path)
+                label = "-" if stdin_tmp is not None and path == stdin_tmp else str(path)
+                results.append(_ingest_one(con, config, path, k, now, label))
+        return IngestSummary(results)
+    finally:
+        if stdin_tmp is not None:
+            shutil.rmtree(stdin_tmp.parent, ignore_errors=True)
+
+
+def _spool_stdin() -> Path:
+    folder = Path(tempfile.mkdtemp(prefix="cuewatch-stdin-"))
+    target = folder / "stdin.jsonl"
+    with open(target, "wb") as out:
+        shutil.copyfileobj(sys.stdin.buffer, out)
+    return target
+
+
+def _ingest_one(
+    con: duckdb.DuckDBPyConnection,
+    config: Config,
+    path: Path,
+    kind: str,
+    now: datetime,
+    label: str,
+) -> FileResult:
+    sha = file_sha256(path)
+    size = path.stat().st_size
+    seen = con.execute(
+        "SELECT batch_id FROM batches WHERE sha256 = ? AND kind = ? AND status = 'ingested' "
+        "ORDER BY batch_id LIMIT 1",
+        [sha, kind],
+    ).fetchone()
+    if seen:
+        return FileResult(
+            label, kind, "skipped", batch_id=seen[0], message=f"already ingested as batch {seen[0]}"
+        )
+    started = utc_now()
+    try:
+        fmt = detect_format(path)
+        checks = build_checks(config, kind)
+        staged = _stage(con, config, checks, path, fmt, now, label)
+        con.execute("BEGIN")
+        try:
+            result = _write_batch(con, config, checks, staged, path, fmt, sha, size, started, label)
+            con.execute("COMMIT")
+        except BaseException:
+            con.execute("ROLLBACK")
+            raise
+        return result
+    except (FileRejected, duckdb.Error, UnicodeDecodeError) as exc:
+        message = str(exc).splitlines()[0] if str(exc) else type(exc).__name__
+        batch_id = con.execute("SELECT nextval('batch_ids')").fetchone()[0]
+        con.execute(
+            "INSERT INTO batches VALUES (?, ?, ?, ?, ?, ?, 0, 0, 0, 0, ?, ?, 'failed', ?, ?, ?)",
+            [
+                batch_id,
+                kind,
+                label,
+                sha,
+                size,
+                path.suffix.lstrip(".") or "?",
+                started,
+                utc_now(),
+                message,
+                config.digest,
+                __version__,
+            ],
+        )
+        return FileResult(label, kind, "failed", batch_id=batch_id, message=message)
+    finally:
+        drop_temp_tables(con, "_raw", "_checked", "_rejects", "_reject_errors", "_reject_scans")
+
+
+def _stage(
+    con: duckdb.DuckDBPyConnection,
+    config: Config,
+    checks,
+    path: Path,
+    fmt: str,
+    now: datetime,
+    label: str,
+) -> int:
+    """Read and check one file into temporary tables (outside the write transaction,
+    so a record's ordinal is its rowid).  Returns the number of lines the CSV reader
+    rejected outright."""
+    present = present_columns(con, config, path, fmt)
+    checks.require_columns(present, label)
+
+    # 1. Read, parse and check every record in one set-based pass, in file order
+    #    (the staged table's rowid is the record's ordinal).
+    tz = checks.timezone
+    if tz != config.decisions.timezone:
+        con.execute(f"SET TimeZone = {sql_literal(tz)}")
+    try:
+        horizon = now + timedelta(hours=config.ingest.future_tolerance_hours)
+        reader = reader_sql(config, path, fmt, checks.columns, present)
+        if fmt == "jsonl":
+            # Materialise the JSON Lines split first: inlined, the optimiser may run a
+            # JSON function on a line that is not JSON before the CASE guards it.
+            stage_temp_table(con, "_raw", reader)
+            reader = "SELECT * FROM _raw"
+        stage_temp_table(
+            con,
+            "_checked",
+            checks.checked_sql(reader, fmt, horizon=horizon, earliest=config.ingest.earliest),
+        )
+    finally:
+        if tz != config.decisions.timezone:
+            con.execute(f"SET TimeZone = {sql_literal(config.decisions.timezone)}")
+    drop_temp_tables(con, "_raw")
+    rejected_lines = _stage_csv_rejects(con) if fmt == "csv" else 0
+    checks.set_line_numbers(fmt, rejected_lines > 0)
+
+    # 2. Duplicates: identical to what is stored (or earlier in the file) -> counted;
+    #    a stored decision with different content -> quarantined, never overwritten.
+    con.execute(classify_duplicates_sql(checks))
+    return rejected_lines
+
+
+def _write_batch(
+    con: duckdb.DuckDBPyConnection,
+    config: Config,
+    checks,
+    rejected_lines: int,
+    path: Path,
+    fmt: str,
+    sha: str,
+    size: int,
+    started: datetime,
+    label: str,
+) -> FileResult:
+    """Append one staged file to the store; the caller holds the transaction."""
+    kind = checks.kind
+    batch_id = con.execute("SELECT nextval('batch_ids')").fetchone()[0]
+    ingested_at = utc_now()
+    accepted = con.execute(insert_sql(checks, batch_id, ingested_at)).fetchone()
+    accepted = int(accepted[0]) if accepted else 0
+    con.execute(quarantine_sql(checks, batch_id, ingested_at))
+    if rejected_lines:
+        con.execute(
+            "INSERT INTO quarantine SELECT ?, ?, line, NULL, 'malformed_record', "
+            "'the CSV reader could not split this line: ' || error_message, "
+            "CAST(to_json(csv_line) AS VARCHAR), ? "
+            "FROM _rejects ORDER BY line",
+            [batch_id, kind, ingested_at],
+        )
+    con.execute(mark_dirty_sql(checks, ingested_at))
+
+    counts = con.execute(
+        "SELECT count(*), count(*) FILTER (WHERE is_duplicate) FROM _checked WHERE NOT is_blank"
+    ).fetchone()
+    rows_read = int(counts[0]) + rejected_lines
+    duplicates = int(counts[1])
+    reasons = dict(
+        con.execute(
+            "SELECT reason, count(*) FROM quarantine WHERE batch_id = ? GROUP BY reason",
+            [batch_id],
+        ).fetchall()
+    )
+    quarantined = int(sum(reasons.values()))
+    if accepted + quarantined + duplicates != rows_read:  # a bug, not a user error
+        raise RuntimeError(
+            f"ingest accounting mismatch for {label}: read {rows_read}, accepted {accepted}, "
+            f"quarantined {quarantined}, duplicates {duplicates}"
+        )
+    con.execute(
+        "INSERT INTO batches VALUES (?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, 'ingested', NULL, ?, ?)",
+        [
+            batch_id,
+            kind,
+            label,
+            sha,
+            size,
+            fmt,
+            rows_read,
+            accepted,
+            quarantined,
+            duplicates,
+            started,
+            utc_now(),
+            config.digest,
+            __version__,
+        ],
+    )
+    return FileResult(
+        label,
+        kind,
+        "ingested",
+        batch_id=batch_id,
+        rows_read=rows_read,
+        accepted=accepted,
+        quarantined=quarantined,
+        duplicates=duplicates,
+        quarantine_reasons=dict(sorted(reasons.items())),
+    )
+
+
+def _stage_csv_rejects(con: duckdb.DuckDBPyConnection) -> int:
+    try:
+        stage_temp_table(
+            con,
+            "_rejects",
+            "SELECT line, first(error_message) AS error_message, "
+            "first(csv_line) AS csv_line FROM _reject_errors GROUP BY line",
+        )
+    except duckdb.CatalogException:
+        empty_temp_table(con, "_rejects", "line BIGINT, error_message VARCHAR, csv_line VARCHAR")
+    return int(con.execute("SELECT count(*) FROM _rejects").fetchone()[0])

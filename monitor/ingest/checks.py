@@ -1,0 +1,460 @@
+"""The per-record checks of ingest, written as set-based SQL built from the configuration.
+
+Every reason code a record can be quarantined with is listed in ``REASONS``; the
+first failing check (in the order of that list) names the reason.  All identifiers
+and literals that come from the configuration go through the store's quoting.  What
+happens to the checked records next (duplicates, the writes) is in monitor.ingest.writes.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+from datetime import datetime
+from pathlib import Path
+
+from monitor.config import Config, CueConfig
+from monitor.store.rules import quote_ident as qi
+from monitor.store.rules import sql_literal as lit
+
+KINDS = ("decisions", "outcomes")
+
+REASONS = {
+    "malformed_record": "the record could not be read (CSV line split wrongly, or not a JSON object)",
+    "missing_field": "a required field is empty or absent",
+    "unparseable_timestamp": "a timestamp could not be read",
+    "implausible_timestamp": "a timestamp lies in the future beyond the tolerance or before the earliest date",
+    "judgment_not_numeric": "the judgment is not a number",
+    "judgment_not_in_map": "the judgment is not one of the configured judgment_values",
+    "judgment_out_of_range": "the judgment lies outside judgment_range",
+    "criterion_not_numeric": "the criterion is not a number",
+    "criterion_not_in_map": "the criterion is not one of the configured criterion_values",
+    "criterion_out_of_range": "the criterion lies outside criterion_range",
+    "cue_not_numeric": "a numeric cue is not a number",
+    "cue_out_of_range": "a numeric cue lies outside its configured range",
+    "binary_not_in_map": "a binary cue value is not in its values map (or not 0/1)",
+    "undeclared_level": "a categorical cue value is not one of its declared levels",
+    "conflicting_duplicate": "the id is already stored (or earlier in the file) with different content",
+    "outcome_before_decision": "the outcome is dated before its decision",
+}
+
+
+class FileRejected(Exception):
+    """The whole file cannot be ingested (missing column, unknown format): a user error."""
+
+
+@dataclass(frozen=True)
+class FileColumn:
+    alias: str  # safe staging name
+    source: str  # the column / key name in the file
+    role: str  # id | time | maker | team | value | cue
+    required: bool
+    cue: str | None = None
+
+
+def _v(alias: str) -> str:
+    """The trimmed text value of a staged column, NULL when empty."""
+    return f"NULLIF(trim({alias}), '')"
+
+
+def _shown(alias: str) -> str:
+    return f"coalesce('''' || {alias} || '''', 'empty')"
+
+
+@dataclass
+class Checks:
+    """SQL for one kind of file under one configuration."""
+
+    config: Config
+    kind: str
+    columns: list[FileColumn]
+    timezone: str
+
+    # --- file level ---------------------------------------------------------------
+
+    def require_columns(self, present: list[str], label: str) -> None:
+        if not present:  # JSON Lines: checked per record
+            return
+        missing = [c.source for c in self.columns if c.required and c.source not in present]
+        if missing:
+            raise FileRejected(
+                f"{label} has no column {', '.join(repr(m) for m in missing)} "
+                f"(the configuration's [{self.kind}] / [cues] name it)"
+            )
+
+    def col(self, role: str) -> FileColumn:
+        return next(c for c in self.columns if c.role == role)
+
+    # --- parsing ---------------------------------------------------------------------
+
+    # Parsing runs in two layers so no text is trimmed or cast twice: the first gives
+    # each column its trimmed text (t_<alias>) or its number (c_<alias>; DuckDB's cast
+    # to DOUBLE ignores surrounding whitespace itself), the second the parsed value.
+
+    def _pre_column(self, c: FileColumn) -> tuple[str, str] | None:
+        """(name, expression) of column ``c``'s first layer (None: parsed straight
+        from the text)."""
+        if c.role in ("id", "maker", "team"):
+            return f"t_{c.alias}", _v(c.alias)
+        if c.role == "value":
+            numeric = not self._value_spec()[0]
+        elif c.role == "cue":
+            cue = self.config.cues[c.cue]
+            numeric = cue.type == "numeric" or (cue.type == "binary" and not cue.values)
+        else:
+            return None
+        if numeric:
+            return f"c_{c.alias}", f"TRY_CAST({c.alias} AS DOUBLE)"
+        return f"t_{c.alias}", _v(c.alias)
+
+    def _value_expr(self, alias: str, values: dict[str, float]) -> str:
+        if values:
+            whens = " ".join(f"WHEN {lit(k)} THEN {float(v)!r}" for k, v in values.items())
+            return f"(CASE t_{alias} {whens} END)"
+        return f"(CASE WHEN isfinite(c_{alias}) THEN c_{alias} END)"
+
+    def _cue_expr(self, c: FileColumn, cue: CueConfig) -> str:
+        if cue.type == "categorical":
+            levels = ", ".join(lit(x) for x in cue.levels)
+            return f"(CASE WHEN t_{c.alias} IN ({levels}) THEN t_{c.alias} END)"
+        if cue.type == "binary":
+            if cue.values:
+                return self._value_expr(c.alias, cue.values)
+            return f"(CASE WHEN c_{c.alias} IN (0, 1) THEN c_{c.alias} END)"
+        return self._value_expr(c.alias, {})
+
+    def _value_checks(
+        self, c: FileColumn, values: dict, rng, prefix: str
+    ) -> list[tuple[str, str, str]]:
+        v = _v(c.alias)
+        parsed = f"p_{c.alias}"
+        out = [(f"{v} IS NULL", "missing_field", f"'{c.source} is empty'")]
+        if values:
+            keys = ", ".join(lit(k) for k in values)
+            out.append(
+                (
+                    f"{parsed} IS NULL",
+                    f"{prefix}_not_in_map",
+                    f"'{c.source}=' || {_shown(c.alias)} || ' is not one of {keys.replace(chr(39), '')}'",
+                )
+            )
+        else:
+            out.append(
+                (
+                    f"{parsed} IS NULL",
+                    f"{prefix}_not_numeric",
+                    f"'{c.source}=' || {_shown(c.alias)} || ' is not a number'",
+                )
+            )
+        if rng is not None:
+            lo, hi = float(rng[0]), float(rng[1])
+            out.append(
+                (
+                    f"{parsed} NOT BETWEEN {lo!r} AND {hi!r}",
+                    f"{prefix}_out_of_range",
+                    f"'{c.source}=' || {_shown(c.alias)} || ' is outside [{lo:g}, {hi:g}]'",
+                )
+            )
+        return out
+
+    def _cue_checks(self, c: FileColumn, cue: CueConfig) -> list[tuple[str, str, str]]:
+        v = _v(c.alias)
+        parsed = f"p_{c.alias}"
+        src = c.source.replace("'", "''")
+        out = [(f"{v} IS NULL", "missing_field", f"'{src} is empty'")]
+        if cue.type == "numeric":
+            out.append(
+                (
+                    f"{parsed} IS NULL",
+                    "cue_not_numeric",
+                    f"'{src}=' || {_shown(c.alias)} || ' is not a number'",
+                )
+            )
+            if cue.range is not None:
+                lo, hi = float(cue.range[0]), float(cue.range[1])
+                out.append(
+                    (
+                        f"{parsed} NOT BETWEEN {lo!r} AND {hi!r}",
+                        "cue_out_of_range",
+                        f"'{src}=' || {_shown(c.alias)} || ' is outside [{lo:g}, {hi:g}]'",
+                    )
+                )
+        elif cue.type == "binary":
+            allowed = ", ".join(cue.values) if cue.values else "0, 1"
+            out.append(
+                (
+                    f"{parsed} IS NULL",
+                    "binary_not_in_map",
+                    f"'{src}=' || {_shown(c.alias)} || ' is not one of {allowed.replace(chr(39), '')}'",
+                )
+            )
+        else:
+            allowed = ", ".join(cue.levels)
+            out.append(
+                (
+                    f"{parsed} IS NULL",
+                    "undeclared_level",
+                    f"'{src}=' || {_shown(c.alias)} || ' is not a declared level ({allowed.replace(chr(39), '')})'",
+                )
+            )
+        return out
+
+    def checked_sql(
+        self, reader: str, fmt: str, *, horizon: datetime, earliest: str, shortcut: bool = True
+    ) -> str:
+        """SELECT over the file reader ``reader`` giving the parsed columns and a reason
+        code per record, in file order (so the staged table's rowid is the record's
+        ordinal).  Only a record that fails a check gets its message and its raw form
+        (``raw_record``, JSON text): an accepted record needs its parsed values only,
+        which keeps the staging table narrow.  ``shortcut`` False leaves out the
+        one-test pass for the common case (the tests compare the two)."""
+        parsed, checks = self._parse_and_checks(horizon, earliest)
+        # Almost every record passes: one cheap test on the parsed values settles
+        # those, and only the others go through the checks in order for their reason.
+        reason = "CASE " + " ".join(f"WHEN {w} THEN '{r}'" for w, r, _ in checks) + " END"
+        if shortcut:
+            reason = f"CASE WHEN {' AND '.join(self._passes(horizon, earliest))} THEN NULL ELSE {reason} END"
+        pre = [nc for nc in map(self._pre_column, self.columns) if nc is not None]
+        working = ", ".join(name for name, _ in pre)
+        aliases = ", ".join(c.alias for c in self.columns)
+        return (
+            f"WITH pre AS (SELECT *, {', '.join(f'{e} AS {n}' for n, e in pre)} FROM ({reader})), "
+            f"parsed AS (SELECT *, {', '.join(parsed)} FROM pre), "
+            f"checked AS (SELECT parsed.*, {reason} AS reason FROM parsed) "
+            f"SELECT is_blank, "
+            f"checked.* EXCLUDE (is_blank, is_malformed, raw_line, reason, {aliases}, {working}), "
+            f"reason, CASE WHEN reason IS NOT NULL THEN {self._message_expr()} END AS message, "
+            f"CASE WHEN reason IS NOT NULL THEN {self._raw_record_expr(fmt)} END AS raw_record, "
+            f"false AS is_duplicate "
+            f"FROM checked"
+        )
+
+    def _passes(self, horizon: datetime, earliest: str) -> list[str]:
+        """Conditions that all hold exactly when none of the checks of
+        ``_parse_and_checks`` fires: a parsed value is NULL whenever its text is
+        empty, so testing the parsed values (and ranges) is enough."""
+        out = ["NOT is_malformed"]
+        for c in self.columns:
+            p = f"p_{c.alias}"
+            if c.role in ("id", "maker", "team"):
+                if c.required:
+                    out.append(f"{p} IS NOT NULL")
+            elif c.role == "time":
+                out.append(
+                    f"{p} IS NOT NULL AND {p} <= {lit(horizon.isoformat())}::TIMESTAMPTZ "
+                    f"AND {p} >= {lit(earliest)}::TIMESTAMPTZ"
+                )
+            else:
+                out.append(f"{p} IS NOT NULL")
+                if c.role == "value":
+                    rng = self._value_spec()[1]
+                else:
+                    cue = self.config.cues[c.cue]
+                    rng = cue.range if cue.type == "numeric" else None
+                if rng is not None:
+                    out.append(f"{p} BETWEEN {float(rng[0])!r} AND {float(rng[1])!r}")
+        return out
+
+    def _parse_and_checks(
+        self, horizon: datetime | None, earliest: str
+    ) -> tuple[list[str], list[tuple[str, str, str]]]:
+        """The parsing expressions and the ordered (condition, reason, message) checks.
+        ``horizon`` None: the future check's condition is left out (message use only)."""
+        parsed: list[str] = []
+        checks: list[tuple[str, str, str]] = [
+            (
+                "is_malformed",
+                "malformed_record",
+                "'not a JSON object: ' || left(coalesce(raw_line, ''), 200)",
+            ),
+        ]
+        for c in self.columns:
+            v = _v(c.alias)
+            if c.role in ("id", "maker", "team"):
+                parsed.append(f"t_{c.alias} AS p_{c.alias}")
+                if c.required:
+                    checks.append((f"{v} IS NULL", "missing_field", f"'{c.source} is empty'"))
+            elif c.role == "time":
+                parsed.append(f"TRY_CAST({v} AS TIMESTAMPTZ) AS p_{c.alias}")
+                checks.append((f"{v} IS NULL", "missing_field", f"'{c.source} is empty'"))
+                checks.append(
+                    (
+                        f"p_{c.alias} IS NULL",
+                        "unparseable_timestamp",
+                        f"'{c.source}=' || {_shown(c.alias)} || ' is not a timestamp'",
+                    )
+                )
+                checks.append(
+                    (
+                        "true"
+                        if horizon is None
+                        else f"p_{c.alias} > {lit(horizon.isoformat())}::TIMESTAMPTZ "
+                        f"OR p_{c.alias} < {lit(earliest)}::TIMESTAMPTZ",
+                        "implausible_timestamp",
+                        f"'{c.source}=' || {_shown(c.alias)} || ' is in the future or before {earliest}'",
+                    )
+                )
+            elif c.role == "value":
+                values, rng, prefix = self._value_spec()
+                parsed.append(f"{self._value_expr(c.alias, values)} AS p_{c.alias}")
+                checks.extend(self._value_checks(c, values, rng, prefix))
+            elif c.role == "cue":
+                cue = self.config.cues[c.cue]
+                parsed.append(f"{self._cue_expr(c, cue)} AS p_{c.alias}")
+                checks.extend(self._cue_checks(c, cue))
+        return parsed, checks
+
+    def _value_spec(self):
+        if self.kind == "decisions":
+            d = self.config.decisions
+            return d.judgment_values, d.judgment_range, "judgment"
+        o = self.config.outcomes
+        return o.criterion_values, o.criterion_range, "criterion"
+
+    def set_line_numbers(self, fmt: str, csv_rejects: bool) -> None:
+        """Fix how a staged record's line number follows from its ordinal (rowid)."""
+        self.line_format = fmt
+        self.line_rejects = csv_rejects
+
+    def line_expr(self, ordinal: str) -> str:
+        """SQL for the source line of the staged record whose 0-based ordinal is
+        ``ordinal`` (e.g. ``c.rowid``)."""
+        fmt = getattr(self, "line_format", "csv")
+        if fmt in ("jsonl", "parquet"):
+            return f"({ordinal} + 1)"
+        if not getattr(self, "line_rejects", True):  # the common case: no join per file
+            return f"({ordinal} + 2)"
+        # CSV: the header is line 1; lines the reader rejected shift later records.
+        return (
+            f"({ordinal} + 2 + (SELECT count(*) FROM (SELECT line - row_number() OVER (ORDER BY line) AS t "
+            f"FROM (SELECT DISTINCT line FROM _rejects)) WHERE t <= {ordinal} + 1))"
+        )
+
+    # --- messages ----------------------------------------------------------------------
+
+    def _message_expr(self) -> str:
+        """The one-line message of a record that failed a check, from its reason and
+        values (staging evaluates it for those records only)."""
+        _, checks = self._parse_and_checks(None, self.config.ingest.earliest)
+        counts: dict[str, int] = {}
+        for _, r, _ in checks:
+            counts[r] = counts.get(r, 0) + 1
+        whens = " ".join(
+            f"WHEN reason = '{r}' THEN {m}"
+            if counts[r] == 1
+            else f"WHEN reason = '{r}' AND {w} THEN {m}"
+            for w, r, m in checks
+        )
+        return f"coalesce(CASE {whens} END, reason)"
+
+    # --- the record as quarantine keeps it -----------------------------------------------
+
+    def _raw_record_expr(self, fmt: str) -> str:
+        """SQL: a failing record as JSON text, as it was read.  A JSON Lines record is
+        its own line; a line that is not a JSON object becomes a JSON string, so
+        json.loads gives back the exact text."""
+        if fmt == "jsonl":
+            return (
+                "CASE WHEN reason = 'malformed_record' THEN CAST(to_json(raw_line) AS VARCHAR) "
+                f"ELSE coalesce(raw_line, {self._record_json(True)}) END"
+            )
+        return self._record_json(True)
+
+    def _record_json(self, raw: bool) -> str:
+        pairs = ", ".join(
+            f"{lit(c.source)}, "
+            + (
+                f"coalesce({c.alias}, CAST(p_{c.alias} AS VARCHAR))"
+                if raw
+                else f"CAST(p_{c.alias} AS VARCHAR)"
+            )
+            for c in self.columns
+        )
+        return f"CAST(json_object({pairs}) AS VARCHAR)"
+
+    def quarantined_record_expr(self) -> str:
+        """SQL over the staging table: the quarantined record as JSON text.  A record
+        found to conflict only after staging (a duplicate id with other content) kept
+        no raw form: its parsed values stand in for it."""
+        return f"coalesce(raw_record, {self._record_json(False)})"
+
+
+def build_checks(config: Config, kind: str) -> Checks:
+    cols: list[FileColumn] = []
+    if kind == "decisions":
+        d = config.decisions
+        cols += [
+            FileColumn("f_id", d.id, "id", True),
+            FileColumn("f_time", d.decided_at, "time", True),
+            FileColumn("f_maker", d.decision_maker, "maker", True),
+        ]
+        if d.team:
+            cols.append(FileColumn("f_team", d.team, "team", False))
+        cols.append(FileColumn("f_value", d.judgment, "value", True))
+        for i, name in enumerate(config.cues):
+            cols.append(FileColumn(f"f_cue{i}", config.cue_column(name), "cue", True, cue=name))
+        tz = d.timezone
+    elif kind == "outcomes":
+        o = config.outcomes
+        if o is None:
+            raise FileRejected("the configuration has no [outcomes] section")
+        cols += [
+            FileColumn("f_id", o.id, "id", True),
+            FileColumn("f_time", o.observed_at, "time", True),
+            FileColumn("f_value", o.criterion, "value", True),
+        ]
+        tz = o.timezone or config.decisions.timezone
+    else:
+        raise FileRejected(f"unknown kind {kind!r}")
+    return Checks(config, kind, cols, tz)
+
+
+# JSON Lines are read one line a record with DuckDB's CSV reader and a delimiter that
+# never occurs in text (four control characters in a row), so no line is ever split.
+_LINE_DELIM = "\x1f\x1e\x1d\x1c"
+
+
+def reader_sql(
+    config: Config, path: Path, fmt: str, columns: list[FileColumn], present: list[str]
+) -> str:
+    """SELECT staging the needed columns as text, plus is_blank / is_malformed / raw_line."""
+    p = lit(str(path))
+    if fmt == "jsonl":
+        keys = ", ".join(
+            f"json_extract_string(obj, {lit('$.' + _json_key(c.source))}) AS {c.alias}"
+            for c in columns
+        )
+        return (
+            # json_type() raises on text that is not JSON, and AND does not short-circuit
+            # in a vectorised engine, so it is only reached through a CASE on json_valid().
+            f"SELECT {keys}, is_blank, NOT is_blank AND NOT is_object AS is_malformed, raw_line FROM ("
+            f"  SELECT *, CASE WHEN is_object THEN raw_line END AS obj FROM ("
+            f"    SELECT line AS raw_line, (line IS NULL OR trim(line, ' \t\r\n\f\v') = '') AS is_blank,"
+            f"      coalesce(CASE WHEN json_valid(line) THEN json_type(line) = 'OBJECT' END, false)"
+            f"        AS is_object"
+            f"    FROM read_csv({p}, columns = {{'line': 'VARCHAR'}}, header = false, delim = '{_LINE_DELIM}',"
+            f"      quote = '', escape = '', auto_detect = false)))"
+        )
+    sel = []
+    for c in columns:
+        if present and c.source not in present:
+            sel.append(f"NULL::VARCHAR AS {c.alias}")
+        elif fmt == "parquet":
+            sel.append(f"CAST({qi(c.source)} AS VARCHAR) AS {c.alias}")
+        else:
+            sel.append(f"{qi(c.source)} AS {c.alias}")
+    flags = "false AS is_blank, false AS is_malformed, NULL::VARCHAR AS raw_line"
+    if fmt == "parquet":
+        return f"SELECT {', '.join(sel)}, {flags} FROM read_parquet({p})"
+    # Every header column is declared as text so no sniffing is needed; lines with
+    # the wrong number of fields go to the reject table (and then to quarantine).
+    declared = ", ".join(f"{lit(name)}: 'VARCHAR'" for name in present)
+    return (
+        f"SELECT {', '.join(sel)}, {flags} FROM read_csv({p}, header = true, auto_detect = false, "
+        f"columns = {{{declared}}}, delim = {lit(config.ingest.delimiter)}, quote = '\"', "
+        f"escape = '\"', encoding = {lit(config.ingest.encoding)}, "
+        f"store_rejects = true, rejects_table = '_reject_errors', rejects_scan = '_reject_scans')"
+    )
+
+
+def _json_key(name: str) -> str:
+    return '"' + name.replace("\\", "\\\\").replace('"', '\\"') + '"'

@@ -1,0 +1,116 @@
+"""Stored window fits read back as `fits --json` objects (DESIGN.md, Contracts)."""
+
+from __future__ import annotations
+
+from datetime import date
+
+import numpy as np
+import pandas as pd
+
+from monitor.config import Config
+from monitor.store.connection import Store
+from monitor.store.rules import quote_ident
+
+FIT_FIELDS = [
+    "scope",
+    "decision_maker",
+    "team",
+    "window_start",
+    "window_end",
+    "n_decisions",
+    "n_linked",
+    "R_s",
+    "R_e",
+    "r_a",
+    "G",
+    "C",
+    "model_of_judge_r",
+]
+CUE_FIELDS = [
+    "cue",
+    "weight",
+    "std_error",
+    "ci_low",
+    "ci_high",
+    "std_weight",
+    "utilization_r",
+    "validity_r",
+    "p_value",
+    "estimable",
+    "reason",
+]
+
+
+def read_fits(
+    config: Config,
+    *,
+    decision_maker: str | None = None,
+    latest: bool = False,
+    scope: str | None = None,
+) -> list[dict]:
+    """Stored window fits as `fits --json` objects (DESIGN.md, Contracts)."""
+    store = Store(config)
+    where, params = ["TRUE"], []
+    if decision_maker is not None:
+        where.append("f.decision_maker = ?")
+        params.append(decision_maker)
+    if scope is not None:
+        where.append("f.scope = ?")
+        params.append(scope)
+    if latest:
+        where.append(
+            "f.window_end = (SELECT max(window_end) FROM fits g WHERE g.scope = f.scope "
+            "AND g.decision_maker = f.decision_maker)"
+        )
+    order = "CASE f.scope WHEN 'decision_maker' THEN 0 WHEN 'team' THEN 1 ELSE 2 END, f.decision_maker, f.window_end"
+    with store.reader() as con:
+        store.ensure_ready(con)  # an old or uninitialised store: one sentence, exit 2
+        fits = con.execute(
+            f"SELECT {', '.join('f.' + quote_ident(c) for c in FIT_FIELDS)}, f.reason FROM fits f "
+            f"WHERE {' AND '.join(where)} ORDER BY {order}",
+            params,
+        ).df()
+        cues = con.execute(
+            f"SELECT c.scope, c.decision_maker, c.window_end, {', '.join('c.' + quote_ident(x) for x in CUE_FIELDS)} "
+            f"FROM cue_weights c JOIN fits f USING (scope, decision_maker, window_end) "
+            f"WHERE {' AND '.join(where)} ORDER BY c.scope, c.decision_maker, c.window_end, c.cue_index",
+            params,
+        ).df()
+    grouped = {k: g for k, g in cues.groupby(["scope", "decision_maker", "window_end"], sort=False)}
+    out = []
+    for row in fits.itertuples(index=False):
+        d = dict(zip([*FIT_FIELDS, "reason"], row, strict=True))
+        g = grouped.get((d["scope"], d["decision_maker"], d["window_end"]))
+        d["cues"] = (
+            []
+            if g is None
+            else [
+                _clean(dict(zip(CUE_FIELDS, r, strict=True)))
+                for r in g[CUE_FIELDS].itertuples(index=False)
+            ]
+        )
+        out.append(_clean(d))
+    return out
+
+
+def _clean(d: dict) -> dict:
+    out = {}
+    for k, v in d.items():
+        if isinstance(v, float) and not np.isfinite(v):
+            v = None
+        elif isinstance(v, np.floating):
+            v = None if not np.isfinite(v) else float(v)
+        elif isinstance(v, np.integer):
+            v = int(v)
+        elif isinstance(v, np.bool_):
+            v = bool(v)
+        elif isinstance(v, pd.Timestamp):
+            v = v.date().isoformat()
+        elif isinstance(v, date):
+            v = v.isoformat()
+        elif v is pd.NA or v is pd.NaT:
+            v = None
+        if k == "reason" and not v:
+            v = None
+        out[k] = v
+    return out

@@ -1,0 +1,237 @@
+"""Which windows to fit and their statistics: the aligned window ends, each
+decision-maker's window sums from their day buckets, and the pooled team and all
+windows.
+
+Windows are ``length_days`` long and end every ``step_days`` days on dates aligned
+to ``windows.origin``; a window ending on E covers the days E-length+1 .. E.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+from datetime import date, timedelta
+
+import numpy as np
+
+from monitor.config import Config
+from monitor.refit.buckets import StatLayout
+from monitor.stats.moments import Moments, group_sums
+
+EPOCH = date(1970, 1, 1)
+ALL_KEY = "all"
+
+
+def day_number(d: date) -> int:
+    """Days since 1970-01-01."""
+    return (d - EPOCH).days
+
+
+def from_day_number(n: int) -> date:
+    """The date ``n`` days after 1970-01-01."""
+    return EPOCH + timedelta(days=int(n))
+
+
+def aligned_ends(config: Config, first_day: int, last_day: int) -> np.ndarray:
+    """Window end day-numbers (aligned to the origin every step) whose windows
+    overlap [first_day, last_day], up to the first aligned date on or after last_day."""
+    w = config.windows
+    origin = day_number(date.fromisoformat(w.origin))
+    lo = first_day  # first end that covers first_day
+    j0 = -((origin - lo) // w.step_days)  # ceil((lo - origin) / step)
+    hi = last_day
+    j1 = -((origin - hi) // w.step_days)
+    return origin + np.arange(j0, j1 + 1) * w.step_days
+
+
+def covering_ends(config: Config, days: np.ndarray, newest: int) -> tuple[np.ndarray, np.ndarray]:
+    """Every (index into ``days``, aligned window end) whose window covers that day:
+    ends in [day, day + length - 1], none after ``newest``.  Vectorised: a day is
+    covered by at most ceil(length / step) + 1 aligned windows."""
+    w = config.windows
+    origin = day_number(date.fromisoformat(w.origin))
+    days = np.asarray(days, dtype=np.int64)
+    first = -((origin - days) // w.step_days)  # ceil((day - origin) / step)
+    per = -(-w.length_days // w.step_days) + 1
+    ends = origin + (first[:, None] + np.arange(per)) * w.step_days
+    upper = np.maximum(days + w.length_days - 1, 0)
+    ok = (ends >= days[:, None]) & (ends <= upper[:, None]) & (ends <= newest)
+    rows, cols = np.nonzero(ok)
+    return rows, ends[rows, cols]
+
+
+@dataclass
+class Buckets:
+    """Stored bucket rows of several decision-makers (any order) as held in memory.
+
+    keys: (e,) decision-maker ids; shift: (e, p_linked) their shifts; team: (e,) the
+    team on each one's latest bucket; ent, day, linked: (b,) decision-maker index, day
+    number and set (True: the outcome-linked rows, False: all rows) per stored row;
+    row_team: (b,) its team; sums: (b, set_width) its shifted sums (``StatLayout``).
+    """
+
+    keys: np.ndarray
+    shift: np.ndarray
+    team: np.ndarray
+    ent: np.ndarray
+    day: np.ndarray
+    linked: np.ndarray
+    row_team: np.ndarray
+    sums: np.ndarray
+
+
+def latest_teams(
+    n_keys: int, ent: np.ndarray, day: np.ndarray, team: np.ndarray, rank: np.ndarray
+) -> np.ndarray:
+    """Each entity's team on its latest bucket, the greatest if its two rows differ (None
+    for an entity without buckets).  rank: the teams' sort order (-1 for None)."""
+    out = np.full(n_keys, None, dtype=object)
+    order = np.lexsort((rank, day, ent))
+    out[ent[order]] = team[order]  # later buckets overwrite earlier ones
+    return out
+
+
+# Bytes of the dense (decision-maker, day) grid built at once by ``window_sums``.
+GRID_BYTES = 4 << 20
+
+
+def window_sums(
+    ent: np.ndarray,
+    day: np.ndarray,
+    linked: np.ndarray,
+    sums: np.ndarray,
+    win_ent: np.ndarray,
+    win_end: np.ndarray,
+    length: int,
+) -> np.ndarray:
+    """Plain sums of the bucket rows over each window ``[end - length + 1, end]`` of
+    entity ``win_ent``: (m, 2 * set_width), the all-rows sets' sums then the linked
+    sets'.  Rows may come in any order, at most one per (entity, day, linked); only
+    rows inside a window count.
+
+    Days are cut into blocks of ``length`` days (``day // length``), so a window is the
+    tail of one block plus the head of the next (or exactly one block).  On a dense
+    (entity, block, day-in-block) grid, running sums from each block's end backwards
+    (suffix) and from its start (prefix) take two ``cumsum`` passes; a window is then one
+    suffix plus one prefix.  Each is summed over days inside the window only, in a fixed
+    order, so a window's sums do not depend - to the last bit - on which other days were
+    loaded: an incremental refresh reproduces a full one.  The grid is built for a
+    chunk of entities at a time (``GRID_BYTES``).
+    """
+    ent = np.asarray(ent, dtype=np.int64)
+    day = np.asarray(day, dtype=np.int64)
+    linked = np.asarray(linked, dtype=bool)
+    win_ent = np.asarray(win_ent, dtype=np.int64)
+    win_end = np.asarray(win_end, dtype=np.int64)
+    part = sums.shape[1]
+    width = 2 * part
+    out = np.zeros((len(win_end), width))
+    if not len(win_end) or not len(day):
+        return out
+    first = win_end - length + 1
+    d0 = (int(first.min()) // length) * length
+    d1 = (int(win_end.max()) // length + 1) * length  # exclusive
+    blocks = (d1 - d0) // length
+    keep = np.flatnonzero((day >= d0) & (day < d1))
+    by_ent = keep[np.argsort(ent[keep], kind="stable")]
+    ent_sorted = ent[by_ent]
+    w_order = np.argsort(win_ent, kind="stable")
+    w_sorted = win_ent[w_order]
+    wanted = np.unique(win_ent)
+    # A small grid per chunk (a few MB) stays in cache: 4x faster than one large grid.
+    step = max(1, GRID_BYTES // (blocks * length * width * 8))
+    for at in range(0, len(wanted), step):
+        chunk = wanted[at : at + step]
+        lo_e, hi_e = int(chunk[0]), int(chunk[-1])
+        grid = np.zeros((len(chunk), blocks, length, width))
+        a, b = np.searchsorted(ent_sorted, [lo_e, hi_e + 1])
+        rows = by_ent[a:b]
+        slot = np.searchsorted(chunk, ent[rows])
+        rows, slot = rows[chunk[slot] == ent[rows]], slot[chunk[slot] == ent[rows]]
+        off = day[rows] - d0
+        for half in (False, True):
+            mine = linked[rows] == half
+            cols = slice(part, width) if half else slice(0, part)
+            grid[slot[mine], off[mine] // length, off[mine] % length, cols] = sums[rows[mine]]
+        suffix = np.cumsum(grid[:, :, ::-1], axis=2)[:, :, ::-1]
+        np.cumsum(grid, axis=2, out=grid)  # now the prefix sums
+        a, b = np.searchsorted(w_sorted, [lo_e, hi_e + 1])
+        w = w_order[a:b]
+        e = np.searchsorted(chunk, win_ent[w])
+        f_off, e_off = first[w] - d0, win_end[w] - d0
+        bf, be = f_off // length, e_off // length
+        res = suffix[e, bf, f_off % length]
+        two = be != bf  # not block-aligned: add the next block's head
+        res[two] += grid[e[two], be[two], e_off[two] % length]
+        out[w] = res
+        del grid, suffix
+    return out
+
+
+@dataclass
+class ScopeWindows:
+    """Windows of one scope ready to fit: keys, teams and end days (m,), and their
+    statistics (all rows, linked rows)."""
+
+    scope: str
+    keys: np.ndarray
+    teams: np.ndarray
+    end: np.ndarray
+    all_rows: Moments
+    linked: Moments
+
+    def take(self, index: np.ndarray) -> ScopeWindows:
+        return ScopeWindows(
+            self.scope,
+            self.keys[index],
+            self.teams[index],
+            self.end[index],
+            self.all_rows.take(index),
+            self.linked.take(index),
+        )
+
+
+def decision_maker_windows(
+    buckets: Buckets, layout: StatLayout, win_ent: np.ndarray, win_end: np.ndarray, length: int
+) -> ScopeWindows:
+    """The windows (entity index, end day) of single decision-makers, empty ones
+    dropped."""
+    sums = window_sums(
+        buckets.ent, buckets.day, buckets.linked, buckets.sums, win_ent, win_end, length
+    )
+    live = layout.count(sums) > 0
+    sums, win_ent, win_end = sums[live], win_ent[live], win_end[live]
+    all_rows, linked = layout.finish(sums, buckets.shift[win_ent])
+    return ScopeWindows(
+        "decision_maker",
+        buckets.keys[win_ent].astype(object),
+        buckets.team[win_ent],
+        np.asarray(win_end, dtype=np.int64),
+        all_rows,
+        linked,
+    )
+
+
+def pooled_windows(per_dm: ScopeWindows, scope: str) -> ScopeWindows:
+    """Team or all windows pooled from decision-maker windows with the same end (the
+    two-pass formula, ``moments.group_sums``); a decision-maker counts in the team on
+    their latest bucket."""
+    if scope == "team":
+        has = np.array([t is not None for t in per_dm.teams], dtype=bool)
+        src = per_dm.take(np.flatnonzero(has))
+        label = src.teams.astype(object)
+    else:
+        src = per_dm
+        label = np.full(len(src.end), ALL_KEY, dtype=object)
+    if not len(src.end):
+        z = np.array([], dtype=object)
+        empty = Moments(np.zeros(0), np.zeros((0, 0)), np.zeros((0, 0, 0)))
+        return ScopeWindows(scope, z, z, np.array([], dtype=np.int64), empty, empty)
+    names, name_ix = np.unique(label.astype(str), return_inverse=True)
+    ends, end_ix = np.unique(src.end, return_inverse=True)
+    cell = name_ix.astype(np.int64) * len(ends) + end_ix
+    codes, group = np.unique(cell, return_inverse=True)
+    all_rows = group_sums(src.all_rows, group, len(codes))
+    linked = group_sums(src.linked, group, len(codes))
+    keys = names[codes // len(ends)].astype(object)
+    teams = keys if scope == "team" else np.full(len(codes), None, dtype=object)
+    return ScopeWindows(scope, keys, teams, ends[codes % len(ends)], all_rows, linked)

@@ -1,0 +1,1 @@
+"""Pure maths: numpy arrays in, numpy arrays out; no DuckDB, no store, no I/O."""

@@ -1,0 +1,301 @@
+"""Forbidden-cue checks as pure functions: direct and proxy use, with FDR control.
+
+Everything works on stacks of ``m`` windows (one row per decision-maker window), the
+same stacks ``monitor.stats.lens`` produces, and never loops over windows in Python.  Inputs
+are the window ``Moments`` over ``z = (x_1 .. x_k, Ys)`` and the judge fits; nothing here
+reads the store or raises on a degenerate window: such a window gets NaN and a reason.
+
+Weight drift and the R_s / r_a floors live in ``monitor.stats.trends``, alert episodes in
+``monitor.stats.episodes``; their names stay importable from here.
+"""
+
+from __future__ import annotations
+
+from collections.abc import Sequence
+from dataclasses import dataclass
+from typing import TYPE_CHECKING
+
+import numpy as np
+from scipy import stats
+
+from monitor.stats.solves import batched_solve, judge_reasons
+
+if TYPE_CHECKING:
+    from monitor.stats.lens import LensFits
+    from monitor.stats.moments import Moments
+
+
+@dataclass(frozen=True)
+class ForbiddenCueDecomposition:
+    """Disparity = direct + indirect for one forbidden cue, per window and design column.
+
+    Shapes: ``(m,)`` per window, ``(m, f)`` per window x forbidden column (``columns``),
+    ``(m, f, p)`` per window x forbidden column x proxy (``proxies``).  Raw figures are in
+    judgment units per unit of the column (per level-vs-reference for a dummy); the
+    ``std_*`` figures are multiplied by sd(column) / sd(Ys), the scale of a standardised
+    weight.  The joint tests are F tests with (f, df_resid) degrees of freedom; for a
+    single column they equal the squared t test.  A window that cannot be assessed has
+    NaN everywhere and a non-empty ``reason``.
+    """
+
+    cue: str
+    columns: tuple[str, ...]
+    proxies: tuple[str, ...]
+    n: np.ndarray
+    df_resid: np.ndarray
+    disparity: np.ndarray
+    direct: np.ndarray
+    direct_se: np.ndarray
+    direct_ci_low: np.ndarray
+    direct_ci_high: np.ndarray
+    direct_p: np.ndarray
+    indirect: np.ndarray
+    indirect_se: np.ndarray
+    indirect_p: np.ndarray
+    proxy_parts: np.ndarray
+    std_disparity: np.ndarray
+    std_direct: np.ndarray
+    std_indirect: np.ndarray
+    std_proxy_parts: np.ndarray
+    joint_F: np.ndarray
+    joint_p: np.ndarray
+    indirect_joint_F: np.ndarray
+    indirect_joint_p: np.ndarray
+    reason: np.ndarray
+
+
+def cue_columns(names: Sequence[str], cue: str) -> list[int]:
+    """Design-column indices of a cue: its own column, or its dummies named ``cue=level``."""
+    return [j for j, name in enumerate(names) if name == cue or name.startswith(f"{cue}=")]
+
+
+def _wald_f(
+    est: np.ndarray, cov: np.ndarray, df_resid: np.ndarray
+) -> tuple[np.ndarray, np.ndarray]:
+    """F = est' cov^-1 est / q with its upper-tail p from F(q, df_resid); NaN if singular."""
+    q = est.shape[1]
+    ok = np.isfinite(est).all(axis=1) & (df_resid > 0)
+    sol, ok = batched_solve(cov, est, ok)
+    f_stat = np.einsum("mi,mi->m", np.nan_to_num(est), np.nan_to_num(sol)) / q
+    f_stat = np.where(ok, f_stat, np.nan)
+    return f_stat, stats.f.sf(f_stat, q, np.where(ok, df_resid, 1.0))
+
+
+def forbidden_cue_decomposition(
+    all_rows: Moments, fits: LensFits, cue: str
+) -> ForbiddenCueDecomposition:
+    """Split each window's disparity on forbidden ``cue`` into direct and per-proxy parts.
+
+    ``all_rows`` holds the moments of ``z = (x_1 .. x_k, Ys)`` for the same m windows and
+    column order as ``fits``.  With F the cue's columns and P the others:
+    disparity = slope of Ys on F alone, direct = b_F of the full judge model, and
+    indirect = disparity - direct = sum_k b_k delta_k, delta_k the slope of x_k on F alone
+    (the omitted-variable identity, exact for OLS).  ``indirect_se`` treats delta as fixed,
+    which it is conditional on the cues, so Var = delta' V_PP delta is exact under the
+    judge model's assumptions; it equals V_full(b_F) - sigma^2 (F'F)^-1, the classic
+    test of a difference between a zero-order and a partial slope (Clogg, Petkova &
+    Haritou 1995, from memory).  A constant proxy contributes 0.
+    Raises ValueError only for a cue that has no column (a configuration bug).
+    """
+    names = tuple(fits.names)
+    f_idx = cue_columns(names, cue)
+    if not f_idx:
+        raise ValueError(f"cue {cue!r} has no design column among {names}")
+    p_idx = [j for j in range(len(names)) if j not in f_idx]
+    k = len(names)
+    m_all = all_rows.comoment
+    s_ff = m_all[:, f_idx][:, :, f_idx]
+    s_fy = m_all[:, f_idx, k]
+    s_fp = m_all[:, f_idx][:, :, p_idx]
+    var_y = m_all[:, k, k]
+    var_f = np.diagonal(s_ff, axis1=1, axis2=2)
+    var_p = m_all[:, p_idx, p_idx]
+
+    reason = judge_reasons(fits)
+    fitted = reason == ""
+    f_est = np.asarray(fits.estimable)[:, f_idx].all(axis=1)
+    cue_why = np.asarray(fits.cue_reason, dtype=object)[:, f_idx[0]]
+    bad_f = fitted & ~f_est
+    reason[bad_f] = [f"forbidden cue not estimable: {r or 'unknown'}" for r in cue_why[bad_f]]
+
+    # A proxy the fit could not estimate is harmless only if it is constant (delta = 0);
+    # otherwise the partial weights are not identified and neither is the split.
+    p_est = np.asarray(fits.estimable)[:, p_idx]
+    # Constant means sd <= 1e-10 |mean| (rounding spread), the rule monitor.stats.lens uses.
+    scale_p = all_rows.n[:, None] * np.maximum(all_rows.mean[:, p_idx] ** 2, 1e-300)
+    p_const = var_p <= 1e-20 * scale_p
+    bad_p = fitted & f_est & (~p_est & ~p_const).any(axis=1)
+    reason[bad_p] = "a permitted cue is not estimable (collinear), split not identified"
+    ok = reason == ""
+    # Same relative rule as a constant cue: a spread of rounding size is no spread.
+    mean_y = all_rows.mean[:, k]
+    bad_y = ok & (var_y <= 1e-20 * all_rows.n * np.maximum(mean_y**2, 1e-300))
+    reason[bad_y] = "constant judgment"
+    ok = reason == ""
+
+    disparity, ok_solve = batched_solve(s_ff, s_fy, ok)
+    delta, _ = batched_solve(s_ff, s_fp, ok_solve)
+    reason[ok & ~ok_solve] = "forbidden cue columns collinear in window"
+    ok = ok_solve
+    nan_m = np.where(ok, 1.0, np.nan)
+    col = nan_m[:, None]
+
+    weights = np.asarray(fits.weights, dtype=float)
+    b_f = weights[:, f_idx] * col
+    b_p = np.where(p_const, 0.0, weights[:, p_idx])
+    delta = np.where(p_const[:, None, :], 0.0, delta)
+    parts = delta * b_p[:, None, :]
+    indirect = disparity - b_f
+
+    cov = np.asarray(fits.cov, dtype=float)
+    v_pp = np.nan_to_num(cov[:, p_idx][:, :, p_idx])
+    ind_cov = np.einsum("mfp,mpq,mgq->mfg", np.nan_to_num(delta), v_pp, np.nan_to_num(delta))
+    ind_se = np.sqrt(np.diagonal(ind_cov, axis1=1, axis2=2)) * col
+    df = np.asarray(fits.df_resid, dtype=float)
+    df_safe = np.where(df > 0, df, np.nan)[:, None]
+    with np.errstate(divide="ignore", invalid="ignore"):
+        ind_p = 2 * stats.t.sf(np.abs(indirect / ind_se), df_safe)
+        to_std = np.sqrt(var_f / np.where(var_y > 0, var_y, np.nan)[:, None])
+
+    v_ff = cov[:, f_idx][:, :, f_idx]
+    joint_f, joint_p = _wald_f(b_f, v_ff, np.where(ok, df, 0.0))
+    ind_joint_f, ind_joint_p = _wald_f(indirect, ind_cov, np.where(ok, df, 0.0))
+    # No proxy path at all (no permitted cue varies with f): nothing to find, p = 1
+    # rather than 0/0.
+    no_path = ok & (np.abs(ind_cov) == 0).all(axis=(1, 2))
+    ind_p = np.where(no_path[:, None], 1.0, ind_p)
+    ind_joint_p = np.where(no_path, 1.0, ind_joint_p)
+    return ForbiddenCueDecomposition(
+        cue=cue,
+        columns=tuple(names[j] for j in f_idx),
+        proxies=tuple(names[j] for j in p_idx),
+        n=np.asarray(all_rows.n, dtype=float),
+        df_resid=df,
+        disparity=disparity,
+        direct=b_f,
+        direct_se=np.asarray(fits.std_errors)[:, f_idx] * col,
+        direct_ci_low=np.asarray(fits.ci_low)[:, f_idx] * col,
+        direct_ci_high=np.asarray(fits.ci_high)[:, f_idx] * col,
+        direct_p=np.asarray(fits.p_values)[:, f_idx] * col,
+        indirect=indirect,
+        indirect_se=ind_se,
+        indirect_p=ind_p,
+        proxy_parts=parts,
+        std_disparity=disparity * to_std,
+        std_direct=np.asarray(fits.std_weights)[:, f_idx] * col,
+        std_indirect=indirect * to_std,
+        std_proxy_parts=parts * to_std[:, :, None],
+        joint_F=joint_f,
+        joint_p=joint_p,
+        indirect_joint_F=ind_joint_f,
+        indirect_joint_p=ind_joint_p,
+        reason=reason,
+    )
+
+
+def bh_qvalues(p_values: np.ndarray, groups: np.ndarray | None = None) -> np.ndarray:
+    """Benjamini-Hochberg adjusted p-values (q-values), one family per ``groups`` label.
+
+    Any shape; NaN p-values stay NaN and do not count towards a family's size.  Without
+    ``groups`` all finite entries form one family.  q_(i) = min_{j >= i} min(1, p_(j) m / j).
+    """
+    p = np.asarray(p_values, dtype=float)
+    flat = p.ravel()
+    labels = np.zeros(p.shape, dtype=int) if groups is None else np.asarray(groups)
+    _, g = np.unique(np.broadcast_to(labels, p.shape).ravel(), return_inverse=True)
+    live = np.flatnonzero(np.isfinite(flat))
+    q = np.full(flat.shape, np.nan)
+    if live.size == 0:
+        return q.reshape(p.shape)
+    pl, gl = flat[live], g[live]
+    order = np.lexsort((pl, gl))
+    ps, gs = pl[order], gl[order]
+    starts = np.flatnonzero(np.r_[True, gs[1:] != gs[:-1]])
+    sizes = np.diff(np.r_[starts, gs.size])
+    rank = np.arange(gs.size) - np.repeat(starts, sizes) + 1
+    raw = np.minimum(1.0, ps * np.repeat(sizes, sizes) / rank)
+    # Offsetting each family by 2 x its position keeps the running minimum (taken from
+    # the end) from leaking from one family into the one before it.
+    offset = 2.0 * np.repeat(np.arange(starts.size), sizes)
+    qs = np.minimum.accumulate((raw + offset)[::-1])[::-1] - offset
+    q[live[order]] = qs
+    return q.reshape(p.shape)
+
+
+@dataclass(frozen=True)
+class ForbiddenCueFlags:
+    """Per-window verdict on one forbidden cue (all arrays (m,)).
+
+    ``size`` is the standardised direct weight of the column with the largest |value|
+    (``size_column``); ``p_value`` is its t test for a single column, the joint F test for
+    a categorical cue; ``q_value`` is BH-adjusted within the evaluation's family.  The
+    ``proxy_*`` fields are the same for the indirect part, in a family of their own.
+    ``assessable`` is False where the decomposition gave a reason; such windows are never
+    flagged.
+    """
+
+    cue: str
+    size: np.ndarray
+    size_column: np.ndarray
+    p_value: np.ndarray
+    q_value: np.ndarray
+    flagged: np.ndarray
+    proxy_size: np.ndarray
+    proxy_p_value: np.ndarray
+    proxy_q_value: np.ndarray
+    proxy_flagged: np.ndarray
+    assessable: np.ndarray
+
+
+def _largest(values: np.ndarray, columns: tuple[str, ...]) -> tuple[np.ndarray, np.ndarray]:
+    safe = np.where(np.isfinite(values), np.abs(values), -1.0)
+    at = safe.argmax(axis=1)
+    return values[np.arange(len(values)), at], np.asarray(columns, dtype=object)[at]
+
+
+def flag_forbidden(
+    decompositions: Sequence[ForbiddenCueDecomposition],
+    *,
+    tolerance: float,
+    fdr: float,
+    family: np.ndarray | None = None,
+) -> list[ForbiddenCueFlags]:
+    """Flag direct and proxy use of every forbidden cue over the same m windows.
+
+    The BH family is every (window, cue) sharing a ``family`` label (an evaluation id per
+    window; default: all m windows form one evaluation).  Direct use is flagged when
+    |size| >= tolerance and q <= fdr.  A proxy finding needs |standardised indirect| >=
+    tolerance and its own q <= fdr, its p from the exact conditional test of the
+    indirect part (see ``forbidden_cue_decomposition``); its family is separate so that
+    reporting proxies cannot dilute or inflate the direct findings.
+    """
+    if not decompositions:
+        return []
+    m = len(decompositions[0].n)
+    labels = np.zeros(m, dtype=int) if family is None else np.asarray(family)
+    groups = np.broadcast_to(labels, (len(decompositions), m))
+
+    def evidence(single: list[np.ndarray], joint: list[np.ndarray]) -> np.ndarray:
+        return np.stack(
+            [s[:, 0] if s.shape[1] == 1 else j for s, j in zip(single, joint, strict=True)]
+        )
+
+    p = evidence([d.direct_p for d in decompositions], [d.joint_p for d in decompositions])
+    pp = evidence(
+        [d.indirect_p for d in decompositions], [d.indirect_joint_p for d in decompositions]
+    )
+    q, pq = bh_qvalues(p, groups), bh_qvalues(pp, groups)
+    out = []
+    for c, d in enumerate(decompositions):
+        assessable = d.reason == ""
+        size, column = _largest(d.std_direct, d.columns)
+        psize, _ = _largest(d.std_indirect, d.columns)
+        with np.errstate(invalid="ignore"):
+            flagged = assessable & (np.abs(size) >= tolerance) & (q[c] <= fdr)
+            pflagged = assessable & (np.abs(psize) >= tolerance) & (pq[c] <= fdr)
+        out.append(
+            ForbiddenCueFlags(
+                d.cue, size, column, p[c], q[c], flagged, psize, pp[c], pq[c], pflagged, assessable
+            )
+        )
+    return out

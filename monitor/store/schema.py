@@ -1,0 +1,361 @@
+"""The store's schema: every table, view and migration, and the tables rebuilt with
+the statistics layout.
+
+Migrations are append-only: never edit what a released migration does; add a new one.
+Views that carry a shared rule (which outcome counts for a decision) are written from
+that rule's owner in ``monitor.store.rules``; changing such a rule needs a new
+migration that re-creates the view.  Temporary staging tables of the ingest live here
+too, so that no module outside ``monitor.store`` writes DDL.
+"""
+
+from __future__ import annotations
+
+import duckdb
+
+from monitor import __version__
+from monitor.config import Config
+from monitor.errors import UserError
+from monitor.store.rules import current_outcome_rows_sql, quote_ident, utc_now
+
+SCHEMA_VERSION_TABLE = "schema_migrations"
+
+
+class StoreMismatch(UserError):
+    """The store's layout disagrees with the configuration (a user error)."""
+
+
+# Each entry is (version, description, statements).  Append only: never edit a
+# released migration, add a new one.
+MIGRATIONS: list[tuple[int, str, list[str]]] = [
+    (
+        1,
+        "decisions, outcomes, batches, quarantine, runs and the analysts' view",
+        [
+            "CREATE SEQUENCE batch_ids START 1",
+            """CREATE TABLE batches (
+                batch_id BIGINT PRIMARY KEY,
+                kind VARCHAR NOT NULL,
+                path VARCHAR NOT NULL,
+                sha256 VARCHAR NOT NULL,
+                size_bytes BIGINT NOT NULL,
+                format VARCHAR NOT NULL,
+                rows_read BIGINT,
+                rows_accepted BIGINT,
+                rows_quarantined BIGINT,
+                rows_duplicate BIGINT,
+                started_at TIMESTAMPTZ NOT NULL,
+                finished_at TIMESTAMPTZ,
+                status VARCHAR NOT NULL,
+                message VARCHAR,
+                config_digest VARCHAR,
+                software_version VARCHAR
+            )""",
+            """CREATE TABLE decisions (
+                decision_id VARCHAR NOT NULL,
+                decided_at TIMESTAMPTZ NOT NULL,
+                decided_day DATE NOT NULL,
+                decision_maker VARCHAR NOT NULL,
+                team VARCHAR,
+                judgment DOUBLE NOT NULL,
+                batch_id BIGINT NOT NULL,
+                ingested_at TIMESTAMPTZ NOT NULL,
+                source_line BIGINT
+            )""",
+            """CREATE TABLE outcomes (
+                decision_id VARCHAR NOT NULL,
+                observed_at TIMESTAMPTZ NOT NULL,
+                criterion DOUBLE NOT NULL,
+                batch_id BIGINT NOT NULL,
+                ingested_at TIMESTAMPTZ NOT NULL,
+                source_line BIGINT
+            )""",
+            """CREATE TABLE quarantine (
+                batch_id BIGINT NOT NULL,
+                kind VARCHAR NOT NULL,
+                source_line BIGINT,
+                record_id VARCHAR,
+                reason VARCHAR NOT NULL,
+                message VARCHAR NOT NULL,
+                raw_row VARCHAR,
+                quarantined_at TIMESTAMPTZ NOT NULL
+            )""",
+            """CREATE TABLE dirty_buckets (
+                decision_maker VARCHAR NOT NULL,
+                day DATE NOT NULL,
+                marked_at TIMESTAMPTZ NOT NULL
+            )""",
+            """CREATE TABLE runs (
+                run_id VARCHAR NOT NULL,
+                command VARCHAR NOT NULL,
+                started_at TIMESTAMPTZ NOT NULL,
+                finished_at TIMESTAMPTZ,
+                status VARCHAR NOT NULL,
+                message VARCHAR
+            )""",
+            # The outcome that counts for a decision: the most recently ingested one
+            # (a correction is a later restatement); every earlier value stays in
+            # `outcomes` as history.
+            "CREATE VIEW current_outcomes AS SELECT decision_id, observed_at, criterion, "
+            f"batch_id, ingested_at, source_line FROM ({current_outcome_rows_sql()})",
+            """CREATE VIEW decisions_with_outcome AS
+               SELECT d.*, o.criterion, o.observed_at,
+                      o.ingested_at AS outcome_ingested_at,
+                      o.batch_id AS outcome_batch_id
+               FROM decisions d LEFT JOIN current_outcomes o USING (decision_id)""",
+        ],
+    ),
+    (
+        2,
+        "rolling window fits, their cue weights and the store's key-value facts",
+        [
+            """CREATE TABLE store_facts (
+                key VARCHAR PRIMARY KEY,
+                value VARCHAR,
+                updated_at TIMESTAMPTZ
+            )""",
+            # One row per (scope, decision-maker or team or 'all', window).
+            """CREATE TABLE fits (
+                scope VARCHAR NOT NULL,
+                decision_maker VARCHAR NOT NULL,
+                team VARCHAR,
+                window_start DATE NOT NULL,
+                window_end DATE NOT NULL,
+                n_decisions BIGINT NOT NULL,
+                n_linked BIGINT NOT NULL,
+                R_s DOUBLE, R_e DOUBLE, r_a DOUBLE, G DOUBLE, C DOUBLE,
+                model_of_judge_r DOUBLE,
+                R_s_linked DOUBLE,
+                judgment_mean DOUBLE,
+                judgment_sd DOUBLE,
+                sigma DOUBLE,
+                df_resid DOUBLE,
+                condition_number DOUBLE,
+                method VARCHAR NOT NULL,
+                reason VARCHAR,
+                weight_cov DOUBLE[],
+                cue_mean DOUBLE[],
+                comoment DOUBLE[],
+                design_signature VARCHAR NOT NULL,
+                software_version VARCHAR NOT NULL,
+                fitted_at TIMESTAMPTZ NOT NULL
+            )""",
+            """CREATE TABLE cue_weights (
+                scope VARCHAR NOT NULL,
+                decision_maker VARCHAR NOT NULL,
+                window_end DATE NOT NULL,
+                cue_index INTEGER NOT NULL,
+                cue VARCHAR NOT NULL,
+                weight DOUBLE, std_error DOUBLE, t_value DOUBLE, p_value DOUBLE,
+                ci_low DOUBLE, ci_high DOUBLE,
+                std_weight DOUBLE, utilization_r DOUBLE, validity_r DOUBLE,
+                env_weight DOUBLE,
+                estimable BOOLEAN NOT NULL,
+                reason VARCHAR
+            )""",
+        ],
+    ),
+    (
+        3,
+        "policy findings per window, alerts with their history and delivery outbox",
+        [
+            "CREATE SEQUENCE alert_ids START 1",
+            # One row per (evaluation, decision-maker or team, check, cue level, window).
+            """CREATE TABLE policy_findings (
+                evaluated_at TIMESTAMPTZ NOT NULL,
+                check_kind VARCHAR NOT NULL,
+                scope VARCHAR NOT NULL,
+                decision_maker VARCHAR NOT NULL,
+                team VARCHAR,
+                cue VARCHAR NOT NULL,
+                level VARCHAR,
+                window_start DATE NOT NULL,
+                window_end DATE NOT NULL,
+                n BIGINT,
+                disparity DOUBLE,
+                direct DOUBLE,
+                indirect DOUBLE,
+                std_disparity DOUBLE,
+                std_weight DOUBLE,
+                std_indirect DOUBLE,
+                ci_low DOUBLE,
+                ci_high DOUBLE,
+                p_value DOUBLE,
+                q_value DOUBLE,
+                statistic DOUBLE,
+                flagged BOOLEAN,
+                assessable BOOLEAN NOT NULL,
+                reason VARCHAR
+            )""",
+            """CREATE TABLE policy_proxy_parts (
+                evaluated_at TIMESTAMPTZ NOT NULL,
+                decision_maker VARCHAR NOT NULL,
+                cue VARCHAR NOT NULL,
+                level VARCHAR,
+                window_end DATE NOT NULL,
+                proxy_cue VARCHAR NOT NULL,
+                part DOUBLE,
+                std_part DOUBLE
+            )""",
+            """CREATE TABLE alerts (
+                alert_id BIGINT PRIMARY KEY,
+                kind VARCHAR NOT NULL,
+                scope VARCHAR NOT NULL,
+                decision_maker VARCHAR NOT NULL,
+                team VARCHAR,
+                cue VARCHAR,
+                state VARCHAR NOT NULL,
+                opened_at TIMESTAMPTZ NOT NULL,
+                opened_window_end DATE NOT NULL,
+                resolved_at TIMESTAMPTZ,
+                resolved_window_end DATE,
+                acknowledged_by VARCHAR,
+                acknowledged_at TIMESTAMPTZ,
+                note VARCHAR,
+                evidence VARCHAR NOT NULL,
+                updated_at TIMESTAMPTZ NOT NULL
+            )""",
+            """CREATE TABLE alert_history (
+                alert_id BIGINT NOT NULL,
+                changed_at TIMESTAMPTZ NOT NULL,
+                from_state VARCHAR,
+                to_state VARCHAR NOT NULL,
+                changed_by VARCHAR NOT NULL,
+                note VARCHAR,
+                evidence VARCHAR
+            )""",
+            """CREATE TABLE alert_deliveries (
+                alert_id BIGINT NOT NULL,
+                event VARCHAR NOT NULL,
+                sink VARCHAR NOT NULL,
+                status VARCHAR NOT NULL,
+                attempts INTEGER NOT NULL,
+                last_error VARCHAR,
+                created_at TIMESTAMPTZ NOT NULL,
+                delivered_at TIMESTAMPTZ
+            )""",
+        ],
+    ),
+]
+
+
+def cue_sql_type(cue_type: str) -> str:
+    return "VARCHAR" if cue_type == "categorical" else "DOUBLE"
+
+
+def latest_version() -> int:
+    return max(v for v, _, _ in MIGRATIONS)
+
+
+def current_version(con: duckdb.DuckDBPyConnection) -> int:
+    exists = con.execute(
+        "SELECT count(*) FROM information_schema.tables WHERE table_name = ?",
+        [SCHEMA_VERSION_TABLE],
+    ).fetchone()[0]
+    if not exists:
+        return 0
+    row = con.execute(f"SELECT max(version) FROM {SCHEMA_VERSION_TABLE}").fetchone()
+    return int(row[0] or 0)
+
+
+def apply_migrations(con: duckdb.DuckDBPyConnection) -> list[int]:
+    con.execute(
+        f"CREATE TABLE IF NOT EXISTS {SCHEMA_VERSION_TABLE} ("
+        "version INTEGER NOT NULL, description VARCHAR, applied_at TIMESTAMPTZ NOT NULL, "
+        "software_version VARCHAR)"
+    )
+    have = current_version(con)
+    applied = []
+    for version, description, statements in MIGRATIONS:
+        if version <= have:
+            continue
+        for stmt in statements:
+            con.execute(stmt)
+        con.execute(
+            f"INSERT INTO {SCHEMA_VERSION_TABLE} VALUES (?, ?, ?, ?)",
+            [version, description, utc_now(), __version__],
+        )
+        applied.append(version)
+    return applied
+
+
+def decision_columns(con: duckdb.DuckDBPyConnection) -> dict[str, str]:
+    """The ``decisions`` table's columns and their DuckDB types."""
+    return dict(
+        con.execute(
+            "SELECT column_name, data_type FROM information_schema.columns "
+            "WHERE table_name = 'decisions' AND table_schema = 'main'"
+        ).fetchall()
+    )
+
+
+def sync_cue_columns(con: duckdb.DuckDBPyConnection, config: Config) -> list[str]:
+    """Add a ``decisions`` column for every newly configured cue; returns their names.
+
+    A cue whose configured type no longer matches its stored column raises
+    ``StoreMismatch`` (rename the cue or use a new store)."""
+    existing = decision_columns(con)
+    added: list[str] = []
+    for name, cue in config.cues.items():
+        wanted = cue_sql_type(cue.type)
+        if name in existing:
+            if existing[name] != wanted:
+                raise StoreMismatch(
+                    f"cue '{name}' is stored as {existing[name]} but configured as "
+                    f"{cue.type}; rename the cue or use a new store."
+                )
+            continue
+        con.execute(f"ALTER TABLE decisions ADD COLUMN {quote_ident(name)} {wanted}")
+        added.append(name)
+    return added
+
+
+def check_ready(con: duckdb.DuckDBPyConnection, config: Config) -> str | None:
+    """Why the store cannot be used with ``config`` yet (None when it can): the rest of
+    a sentence that starts with the store's path."""
+    if current_version(con) < latest_version():
+        return "is not initialised or needs migrating: run 'cuewatch init' first."
+    missing = [c for c in config.cues if c not in decision_columns(con)]
+    if missing:
+        return f"has no column for cue(s) {', '.join(missing)}: run 'cuewatch init'."
+    return None
+
+
+# --- tables rebuilt with the statistics layout -------------------------------------------
+
+
+def replace_bucket_tables(
+    con: duckdb.DuckDBPyConnection, shift_width: int, sums_width: int
+) -> None:
+    """(Re)create the empty ``bucket_shifts`` and ``bucket_stats`` tables for a bucket
+    layout of ``shift_width`` shifted variables and ``sums_width`` sums per set.  They are
+    internal and rebuilt whenever the design or the layout changes, so they live outside
+    the versioned migrations."""
+    con.execute("DROP TABLE IF EXISTS bucket_stats")
+    con.execute("DROP TABLE IF EXISTS bucket_shifts")
+    con.execute(
+        "CREATE TABLE bucket_shifts (decision_maker VARCHAR NOT NULL, "
+        f"shift DOUBLE[{int(shift_width)}] NOT NULL)"
+    )
+    con.execute(
+        "CREATE TABLE bucket_stats (decision_maker VARCHAR NOT NULL, day DATE NOT NULL, "
+        f"linked_only BOOLEAN NOT NULL, team VARCHAR, sums DOUBLE[{int(sums_width)}] NOT NULL)"
+    )
+
+
+# --- temporary staging tables (one connection, never stored) ---------------------------
+
+
+def stage_temp_table(con: duckdb.DuckDBPyConnection, name: str, select_sql: str) -> None:
+    """Materialise ``select_sql`` as the temporary table ``name``."""
+    con.execute(f"CREATE TEMP TABLE {quote_ident(name)} AS {select_sql}")
+
+
+def empty_temp_table(con: duckdb.DuckDBPyConnection, name: str, columns_sql: str) -> None:
+    """Create the empty temporary table ``name`` with ``columns_sql`` (``a INT, b VARCHAR``)."""
+    con.execute(f"CREATE TEMP TABLE {quote_ident(name)} ({columns_sql})")
+
+
+def drop_temp_tables(con: duckdb.DuckDBPyConnection, *names: str) -> None:
+    """Drop the temporary tables ``names`` where they exist."""
+    for name in names:
+        con.execute(f"DROP TABLE IF EXISTS {quote_ident(name)}")
