@@ -7,7 +7,6 @@ No logic lives here that a test cannot reach through the stage modules.  User er
 from __future__ import annotations
 
 import functools
-import io
 import json
 import sys
 from pathlib import Path
@@ -15,33 +14,10 @@ from pathlib import Path
 import click
 
 from monitor import __version__
-from monitor.cautions import CAUTION
-from monitor.config import ENV_VAR, Config, ConfigError, load_config
+from monitor.config import ENV_VAR, Config, load_config
+from monitor.errors import UserError
 
 EXIT_USER_ERROR = 2
-
-
-def user_errors() -> tuple[type[Exception], ...]:
-    """Exception types that are the user's to fix (one line, exit 2).  Imported here,
-    not at the top, so that `cuewatch --help` does not load every stage."""
-    from monitor.assess.alerts import AlertUsageError
-    from monitor.audit.pack import ExportUsageError
-    from monitor.ingest.checks import FileRejected
-    from monitor.ingest.files import IngestUsageError
-    from monitor.schedule import ScheduleUsageError
-    from monitor.store.connection import StoreBusy
-    from monitor.store.schema import StoreMismatch
-
-    return (
-        ConfigError,
-        IngestUsageError,
-        FileRejected,
-        StoreBusy,
-        StoreMismatch,
-        AlertUsageError,
-        ExportUsageError,
-        ScheduleUsageError,
-    )
 
 
 def fail(message: str) -> None:
@@ -54,7 +30,7 @@ def handles_user_errors(fn):
     def wrapper(*args, **kwargs):
         try:
             return fn(*args, **kwargs)
-        except user_errors() as exc:
+        except UserError as exc:
             fail(str(exc).strip().splitlines()[0] if str(exc).strip() else type(exc).__name__)
 
     return wrapper
@@ -98,28 +74,13 @@ def main(ctx: click.Context, config_path: str | None) -> None:
 @handles_user_errors
 def init(obj: Context, as_json: bool) -> None:
     """Create or migrate the store (a no-op when it is up to date)."""
-    from monitor.store.connection import Store
+    from monitor.store.connection import Store, describe_init
 
     result = Store(obj.config).init()
     if as_json:
         print_json(result)
         return
-    if result["created"]:
-        click.echo(f"Created store {result['path']} (schema version {result['schema_version']}).")
-    elif result["applied"] or result["cue_columns_added"]:
-        click.echo(
-            f"Migrated store {result['path']} to schema version {result['schema_version']}"
-            + (
-                f"; added cue columns {', '.join(result['cue_columns_added'])}"
-                if result["cue_columns_added"]
-                else ""
-            )
-            + "."
-        )
-    else:
-        click.echo(
-            f"Store {result['path']} is up to date (schema version {result['schema_version']})."
-        )
+    click.echo(describe_init(result))
 
 
 @main.command()
@@ -139,7 +100,7 @@ def ingest(obj: Context, paths: tuple[str, ...], kind: str | None, as_json: bool
     if as_json:
         print_json(summary.to_json())
     else:
-        click.echo(format_ingest_summary(summary))
+        click.echo(summary.describe())
     if summary.failed_files:
         first = summary.failed_files[0]
         fail(f"{len(summary.failed_files)} file(s) failed; first: {first.path}: {first.message}")
@@ -162,22 +123,6 @@ def _with_progress(run, enabled: bool):
         return run(on_file)
 
 
-def format_ingest_summary(summary) -> str:
-    ingested = sum(f.status == "ingested" for f in summary.files)
-    lines = [
-        f"{ingested} file(s) ingested, {summary.skipped_files} skipped (already ingested), "
-        f"{len(summary.failed_files)} failed.",
-        f"Rows: {summary.accepted} accepted, {summary.quarantined} quarantined, "
-        f"{summary.duplicates} duplicates.",
-    ]
-    if summary.quarantine_reasons:
-        reasons = ", ".join(f"{k} {v}" for k, v in summary.quarantine_reasons.items())
-        lines.append(f"Quarantine reasons: {reasons}.")
-    for f in summary.failed_files:
-        lines.append(f"FAILED {f.path}: {f.message}")
-    return "\n".join(lines)
-
-
 @main.command()
 @click.option("--full", is_flag=True, help="Recompute every bucket and window from scratch.")
 @click.option("--json", "as_json", is_flag=True, help="Print the summary as JSON.")
@@ -191,11 +136,7 @@ def refit(obj: Context, full: bool, as_json: bool) -> None:
     if as_json:
         print_json(summary.to_json())
         return
-    click.echo(
-        f"Refit ({summary.mode}): {summary.dirty_buckets} dirty bucket(s), "
-        f"{summary.windows_fitted} window fit(s) written "
-        f"({summary.windows_refit_from_rows} refitted from raw rows) in {summary.seconds:.2f} s."
-    )
+    click.echo(summary.describe())
 
 
 @main.command()
@@ -213,62 +154,13 @@ def fits(
     obj: Context, decision_maker: str | None, latest: bool, scope: str | None, as_json: bool
 ) -> None:
     """Show stored window fits: weights, consistency, achievement."""
-    from monitor.refit.fits_read import read_fits
+    from monitor.refit.fits_read import describe_fits, read_fits
 
     rows = read_fits(obj.config, decision_maker=decision_maker, latest=latest, scope=scope)
     if as_json:
         print_json(rows)
         return
-    click.echo(format_fits_table(rows))
-
-
-def format_fits_table(rows: list[dict]) -> str:
-    if not rows:
-        return "No fits stored yet: run 'cuewatch refit'."
-    from rich.console import Console
-    from rich.table import Table
-
-    def num(v, fmt="{:.2f}"):
-        return "-" if v is None else fmt.format(v)
-
-    table = Table(title="Window fits (R_s consistency, r_a achievement, G matching)")
-    for col in (
-        "scope",
-        "who",
-        "window",
-        "n",
-        "linked",
-        "R_s",
-        "R_e",
-        "r_a",
-        "G",
-        "C",
-        "strongest cues (std weight)",
-        "note",
-    ):
-        table.add_column(col)
-    for r in rows:
-        cues = sorted(
-            (c for c in r["cues"] if c["std_weight"] is not None),
-            key=lambda c: -abs(c["std_weight"]),
-        )[:3]
-        table.add_row(
-            r["scope"],
-            str(r["decision_maker"]),
-            f"{r['window_start']}..{r['window_end']}",
-            str(r["n_decisions"]),
-            str(r["n_linked"]),
-            num(r["R_s"]),
-            num(r["R_e"]),
-            num(r["r_a"]),
-            num(r["G"]),
-            num(r["C"]),
-            ", ".join(f"{c['cue']} {c['std_weight']:+.2f}" for c in cues),
-            r.get("reason") or "",
-        )
-    console = Console(width=200, record=True, file=io.StringIO())
-    console.print(table)
-    return console.export_text()
+    click.echo(describe_fits(rows))
 
 
 @main.command()
@@ -348,21 +240,7 @@ def assess(obj: Context, force: bool, as_json: bool) -> None:
     if as_json:
         print_json(summary.to_json())
         return
-    click.echo(format_assess_summary(summary))
-
-
-def format_assess_summary(summary) -> str:
-    if not summary.evaluated:
-        head = "Fits unchanged since the last assessment: nothing re-evaluated."
-    else:
-        head = (
-            f"Assessed {summary.findings} finding rows ({summary.flagged_windows} flagged windows); "
-            f"alerts opened {len(summary.opened)}, resolved {len(summary.resolved)}."
-        )
-    tail = f" Notifications delivered: {summary.delivered}."
-    if summary.delivery_failures:
-        tail += f" Failed (will retry next run): {len(summary.delivery_failures)}; first: {summary.delivery_failures[0]}"
-    return head + tail
+    click.echo(summary.describe())
 
 
 @main.command()
@@ -375,27 +253,13 @@ def format_assess_summary(summary) -> str:
 @handles_user_errors
 def alerts(obj: Context, state: str | None, history: bool, as_json: bool) -> None:
     """List alerts (forbidden-cue use, proxies, drift, consistency, achievement)."""
-    from monitor.assess.alerts import list_alerts
+    from monitor.assess.alerts import describe_alerts, list_alerts
 
     docs = list_alerts(obj.config, state, history=history)
     if as_json:
         print_json(docs)
         return
-    if not docs:
-        click.echo("No alerts.")
-        return
-    for d in docs:
-        ev = d["evidence"]
-        window = ev.get("window") or {}
-        size = ev.get("std_weight")
-        click.echo(
-            f"#{d['id']:<4} {d['state']:<12} {d['kind']:<14} {d['decision_maker']:<10} "
-            f"{d['cue'] or '':<22} window {window.get('start')}..{window.get('end')} "
-            f"size {'-' if size is None else f'{size:+.3f}'} q {ev.get('q_value') if ev.get('q_value') is not None else '-'} "
-            f"n {ev.get('n')}"
-            + (f"  ack by {d['acknowledged_by']}" if d["acknowledged_by"] else "")
-        )
-    click.echo(CAUTION)
+    click.echo(describe_alerts(docs))
 
 
 @main.command()
@@ -428,13 +292,7 @@ def nightly(obj: Context, as_json: bool) -> None:
     if as_json:
         print_json(summary.to_json())
     else:
-        ing, ref = summary.ingest, summary.refit
-        click.echo(
-            f"Nightly run {summary.run_id}: {summary.status}. Ingested {ing.get('accepted', 0)} rows "
-            f"({ing.get('quarantined', 0)} quarantined, {ing.get('duplicates', 0)} duplicates); "
-            f"{ref.get('windows_fitted', 0)} window fit(s) refreshed; "
-            f"alerts opened {len(summary.assess.get('opened', []))}, resolved {len(summary.assess.get('resolved', []))}."
-        )
+        click.echo(summary.describe())
     if summary.status != "ok":
         fail(summary.message)
 
@@ -461,9 +319,7 @@ def schedule(obj: Context) -> None:
         f"Scheduling the nightly job '{cfg.schedule.cron}' ({cfg.schedule.timezone}); next run {nxt[0] if nxt else '?'}."
     )
     summary = run_schedule(cfg, lambda: run_nightly(cfg))
-    click.echo(
-        f"Stopped after {summary.runs} run(s), {summary.failures} failed, {summary.skipped} skipped."
-    )
+    click.echo(summary.describe())
 
 
 @main.command()
@@ -506,7 +362,7 @@ def demo(
     demo_dir: str, no_dashboard: bool, port: int, days: int, handlers: int, tail_days: int
 ) -> None:
     """The Ostwyn Mutual scenario end to end: generate, nightly runs, alerts, audit, dashboard."""
-    from monitor.demo import run_demo
+    from monitor.demo import describe_demo, run_demo
 
     result = run_demo(
         Path(demo_dir).resolve(),
@@ -515,18 +371,7 @@ def demo(
         n_handlers=handlers,
         tail_days=tail_days,
     )
-    alerts = result["alerts"]
-    click.echo(f"\nStore and config: {result['config']}")
-    click.echo(
-        f"Alerts: {len(alerts)} ({sum(a['state'] != 'resolved' for a in alerts)} not resolved):"
-    )
-    for a in alerts:
-        if a["state"] != "resolved" and a["kind"] in ("forbidden_cue", "proxy_use"):
-            click.echo(
-                f"  #{a['id']} {a['kind']} {a['decision_maker']} {a['cue']} since window ending {a['opened_window_end']}"
-            )
-    click.echo(CAUTION)
-    click.echo(f"Try: cuewatch --config {result['config']} fits --latest")
+    click.echo(describe_demo(result))
     if no_dashboard:
         return
     from monitor.config import load_config

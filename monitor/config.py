@@ -25,6 +25,8 @@ from pydantic import (
     model_validator,
 )
 
+from monitor.errors import UserError
+
 ENV_VAR = "CUEWATCH_CONFIG"
 
 # Cue names become column names in the store and keys in reports, so they must be
@@ -45,7 +47,7 @@ RESERVED_COLUMNS = frozenset(
 )
 
 
-class ConfigError(Exception):
+class ConfigError(UserError):
     """A user error in the configuration: one sentence naming the key and the file."""
 
 

@@ -13,6 +13,7 @@ from collections.abc import Callable
 from datetime import date
 from pathlib import Path
 
+from monitor.cautions import CAUTION
 from monitor.config import Config, load_config
 
 REPO_CONFIG = Path(__file__).resolve().parent.parent / "config" / "ostwyn.toml"
@@ -146,3 +147,22 @@ def run_demo(
             out["audit"] = str(target)
             say(f"Audit pack for {quarter}: {target} ({result.get('summary', '')[:200]})")
     return out
+
+
+def describe_demo(result: dict) -> str:
+    """``run_demo``'s account for a person: the store, the alerts still open on
+    forbidden cues or proxies, the caution, and what to try next."""
+    alerts = result["alerts"]
+    open_now = sum(a["state"] != "resolved" for a in alerts)
+    lines = [
+        f"\nStore and config: {result['config']}",
+        f"Alerts: {len(alerts)} ({open_now} not resolved):",
+    ]
+    for a in alerts:
+        if a["state"] != "resolved" and a["kind"] in ("forbidden_cue", "proxy_use"):
+            lines.append(
+                f"  #{a['id']} {a['kind']} {a['decision_maker']} {a['cue']} "
+                f"since window ending {a['opened_window_end']}"
+            )
+    lines += [CAUTION, f"Try: cuewatch --config {result['config']} fits --latest"]
+    return "\n".join(lines)

@@ -32,6 +32,16 @@ class NightlySummary:
     def to_json(self) -> dict:
         return self.__dict__.copy()
 
+    def describe(self) -> str:
+        """One line for a person."""
+        ing, ref, ass = self.ingest, self.refit, self.assess
+        return (
+            f"Nightly run {self.run_id}: {self.status}. Ingested {ing.get('accepted', 0)} rows "
+            f"({ing.get('quarantined', 0)} quarantined, {ing.get('duplicates', 0)} duplicates); "
+            f"{ref.get('windows_fitted', 0)} window fit(s) refreshed; "
+            f"alerts opened {len(ass.get('opened', []))}, resolved {len(ass.get('resolved', []))}."
+        )
+
 
 def run_nightly(config: Config, *, now: datetime | None = None) -> NightlySummary:
     """Run ingest -> refit -> assess once.  A failed file does not stop the run (it is

@@ -41,6 +41,7 @@ from apscheduler.triggers.combining import OrTrigger
 from apscheduler.triggers.cron import CronTrigger
 
 from monitor.config import Config
+from monitor.errors import UserError
 
 log = logging.getLogger(__name__)
 
@@ -61,7 +62,7 @@ _ELEMENT = re.compile(
 )
 
 
-class ScheduleUsageError(Exception):
+class ScheduleUsageError(UserError):
     """A schedule the user wrote cannot be used; the message names the expression."""
 
 
@@ -238,6 +239,13 @@ class ScheduleSummary:
     runs: int
     failures: int
     skipped: int
+
+    def to_json(self) -> dict:
+        return {"runs": self.runs, "failures": self.failures, "skipped": self.skipped}
+
+    def describe(self) -> str:
+        """One line for a person."""
+        return f"Stopped after {self.runs} run(s), {self.failures} failed, {self.skipped} skipped."
 
 
 def run_schedule(

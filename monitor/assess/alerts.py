@@ -26,7 +26,9 @@ import numpy as np
 import pandas as pd
 
 from monitor.assess.findings import JOINT, evaluate
+from monitor.cautions import CAUTION
 from monitor.config import Config
+from monitor.errors import UserError
 from monitor.stats.episodes import episodes
 from monitor.store.connection import Store, get_fact, set_fact
 from monitor.store.rules import quote_ident, utc_now
@@ -41,7 +43,7 @@ ALERT_KINDS = {
 STATES = ("open", "acknowledged", "resolved")
 
 
-class AlertUsageError(Exception):
+class AlertUsageError(UserError):
     """A user error in the alerts / ack commands."""
 
 
@@ -58,6 +60,20 @@ class AssessSummary:
 
     def to_json(self) -> dict:
         return self.__dict__.copy()
+
+    def describe(self) -> str:
+        """One line for a person."""
+        if not self.evaluated:
+            head = "Fits unchanged since the last assessment: nothing re-evaluated."
+        else:
+            head = (
+                f"Assessed {self.findings} finding rows ({self.flagged_windows} flagged windows); "
+                f"alerts opened {len(self.opened)}, resolved {len(self.resolved)}."
+            )
+        tail = f" Notifications delivered: {self.delivered}."
+        if self.delivery_failures:
+            tail += f" Failed (will retry next run): {len(self.delivery_failures)}; first: {self.delivery_failures[0]}"
+        return head + tail
 
 
 # --- assess ---------------------------------------------------------------------------
@@ -472,3 +488,24 @@ def _num(v) -> float | None:
     except (TypeError, ValueError):
         return None
     return f if np.isfinite(f) else None
+
+
+def describe_alerts(docs: list[dict]) -> str:
+    """``list_alerts`` documents as text for a person: a line per alert, then the caution."""
+    if not docs:
+        return "No alerts."
+    lines = []
+    for d in docs:
+        ev = d["evidence"]
+        window = ev.get("window") or {}
+        size = ev.get("std_weight")
+        q = ev.get("q_value")
+        lines.append(
+            f"#{d['id']:<4} {d['state']:<12} {d['kind']:<14} {d['decision_maker']:<10} "
+            f"{d['cue'] or '':<22} window {window.get('start')}..{window.get('end')} "
+            f"size {'-' if size is None else f'{size:+.3f}'} q {q if q is not None else '-'} "
+            f"n {ev.get('n')}"
+            + (f"  ack by {d['acknowledged_by']}" if d["acknowledged_by"] else "")
+        )
+    lines.append(CAUTION)
+    return "\n".join(lines)

@@ -29,6 +29,7 @@ from monitor.audit.figures import quarter_tables
 from monitor.audit.formats import Table, write_csv, write_parquet, write_workbook
 from monitor.audit.report import methodology_text, write_html
 from monitor.config import Config
+from monitor.errors import UserError
 from monitor.refit.buckets import design_expressions
 from monitor.store.connection import Store
 from monitor.store.rules import current_outcome_rows_sql, ingested_by, quote_ident, utc_now
@@ -37,7 +38,7 @@ FORMATS = ("csv", "parquet", "xlsx", "html")
 _QUARTER = re.compile(r"^\s*(\d{4})\s*-?\s*[Qq]([1-4])\s*$")
 
 
-class ExportUsageError(Exception):
+class ExportUsageError(UserError):
     """A user error in `cuewatch export` (one sentence; the CLI exits 2)."""
 
 

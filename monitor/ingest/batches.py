@@ -102,6 +102,22 @@ class IngestSummary:
             "quarantine_reasons": self.quarantine_reasons,
         }
 
+    def describe(self) -> str:
+        """The same account in a few lines for a person."""
+        ingested = sum(f.status == "ingested" for f in self.files)
+        lines = [
+            f"{ingested} file(s) ingested, {self.skipped_files} skipped (already ingested), "
+            f"{len(self.failed_files)} failed.",
+            f"Rows: {self.accepted} accepted, {self.quarantined} quarantined, "
+            f"{self.duplicates} duplicates.",
+        ]
+        if self.quarantine_reasons:
+            reasons = ", ".join(f"{k} {v}" for k, v in self.quarantine_reasons.items())
+            lines.append(f"Quarantine reasons: {reasons}.")
+        for f in self.failed_files:
+            lines.append(f"FAILED {f.path}: {f.message}")
+        return "\n".join(lines)
+
 
 # --- the ingest itself ----------------------------------------------------------------
 

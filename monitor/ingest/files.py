@@ -12,6 +12,7 @@ from pathlib import Path
 import duckdb
 
 from monitor.config import Config
+from monitor.errors import UserError
 from monitor.ingest.checks import KINDS, FileRejected
 from monitor.store.rules import sql_literal
 
@@ -27,7 +28,7 @@ FORMATS = {
 }
 
 
-class IngestUsageError(Exception):
+class IngestUsageError(UserError):
     """A user error in the ingest command itself (bad path, unknown kind, ...)."""
 
 

@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import io
 from datetime import date
 
 import numpy as np
@@ -114,3 +115,53 @@ def _clean(d: dict) -> dict:
             v = None
         out[k] = v
     return out
+
+
+def describe_fits(rows: list[dict]) -> str:
+    """The stored fits (``read_fits`` objects) as a text table for a person."""
+    if not rows:
+        return "No fits stored yet: run 'cuewatch refit'."
+    from rich.console import Console
+    from rich.table import Table
+
+    def num(v, fmt="{:.2f}"):
+        return "-" if v is None else fmt.format(v)
+
+    table = Table(title="Window fits (R_s consistency, r_a achievement, G matching)")
+    for col in (
+        "scope",
+        "who",
+        "window",
+        "n",
+        "linked",
+        "R_s",
+        "R_e",
+        "r_a",
+        "G",
+        "C",
+        "strongest cues (std weight)",
+        "note",
+    ):
+        table.add_column(col)
+    for r in rows:
+        cues = sorted(
+            (c for c in r["cues"] if c["std_weight"] is not None),
+            key=lambda c: -abs(c["std_weight"]),
+        )[:3]
+        table.add_row(
+            r["scope"],
+            str(r["decision_maker"]),
+            f"{r['window_start']}..{r['window_end']}",
+            str(r["n_decisions"]),
+            str(r["n_linked"]),
+            num(r["R_s"]),
+            num(r["R_e"]),
+            num(r["r_a"]),
+            num(r["G"]),
+            num(r["C"]),
+            ", ".join(f"{c['cue']} {c['std_weight']:+.2f}" for c in cues),
+            r.get("reason") or "",
+        )
+    console = Console(width=200, record=True, file=io.StringIO())
+    console.print(table)
+    return console.export_text()

@@ -265,6 +265,14 @@ class RefitSummary:
     def to_json(self) -> dict:
         return self.__dict__.copy()
 
+    def describe(self) -> str:
+        """One line for a person."""
+        return (
+            f"Refit ({self.mode}): {self.dirty_buckets} dirty bucket(s), "
+            f"{self.windows_fitted} window fit(s) written "
+            f"({self.windows_refit_from_rows} refitted from raw rows) in {self.seconds:.2f} s."
+        )
+
 
 def refit(config: Config, *, full: bool = False) -> RefitSummary:
     """Bring bucket statistics and window fits up to date, in one transaction.

@@ -221,3 +221,15 @@ def _connect_with_retry(path: str, read_only: bool, timeout_s: float) -> duckdb.
                 raise
             time.sleep(delay)
             delay = min(delay * 2, 0.5)
+
+
+def describe_init(result: dict) -> str:
+    """``Store.init``'s account in one line for a person."""
+    where, version = result["path"], result["schema_version"]
+    if result["created"]:
+        return f"Created store {where} (schema version {version})."
+    if result["applied"] or result["cue_columns_added"]:
+        added = result["cue_columns_added"]
+        cues = f"; added cue columns {', '.join(added)}" if added else ""
+        return f"Migrated store {where} to schema version {version}{cues}."
+    return f"Store {where} is up to date (schema version {version})."
