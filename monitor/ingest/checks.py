@@ -13,6 +13,7 @@ from datetime import datetime
 from pathlib import Path
 
 from monitor.config import Config, CueConfig
+from monitor.errors import UserError
 from monitor.store.rules import quote_ident as qi
 from monitor.store.rules import sql_literal as lit
 
@@ -38,7 +39,7 @@ REASONS = {
 }
 
 
-class FileRejected(Exception):
+class FileRejected(UserError):
     """The whole file cannot be ingested (missing column, unknown format): a user error."""
 
 
