@@ -8,6 +8,8 @@ from __future__ import annotations
 import altair as alt
 import pandas as pd
 
+from monitor.stats.design import cue_of
+
 # Our palette: teal for the person, warm grey for the team, burnt orange for forbidden
 # cues, pale amber for alert periods, brick red for a flag.
 COLOURS = {
@@ -115,7 +117,7 @@ def weight_panels(weights: pd.DataFrame, spans: pd.DataFrame, columns: int = 3) 
         )
         zero = alt.Chart(pd.DataFrame({"y": [0.0]})).mark_rule(color="#c9c9c9").encode(y="y:Q")
         layers = [zero, band, median, line]
-        base_name = str(cue).split("=")[0]
+        base_name = cue_of(cue)
         cue_spans = spans[spans["cue"].isin([cue, base_name])] if len(spans) else spans
         if len(cue_spans):
             shade = (

@@ -26,6 +26,7 @@ from pydantic import (
 )
 
 from monitor.errors import UserError
+from monitor.stats.design import cue_columns, dummy_name
 
 ENV_VAR = "CUEWATCH_CONFIG"
 
@@ -272,18 +273,15 @@ class Config(_Strict):
         out: list[str] = []
         for name, cue in self.cues.items():
             if cue.type == "categorical":
-                out.extend(f"{name}={lvl}" for lvl in cue.levels if lvl != cue.reference)
+                out.extend(dummy_name(name, lvl) for lvl in cue.levels if lvl != cue.reference)
             else:
                 out.append(name)
         return out
 
     def design_groups(self) -> dict[str, list[int]]:
         """For each cue, the indices of its design columns."""
-        groups: dict[str, list[int]] = {}
         cols = self.design_columns()
-        for name in self.cues:
-            groups[name] = [i for i, c in enumerate(cols) if c == name or c.startswith(name + "=")]
-        return groups
+        return {name: cue_columns(cols, name) for name in self.cues}
 
     @property
     def judgment_is_binary(self) -> bool:

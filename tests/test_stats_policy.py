@@ -16,14 +16,10 @@ import statsmodels.api as sm
 from hypothesis import given, settings
 from statsmodels.stats.multitest import multipletests
 
+from monitor.stats.design import cue_columns
 from monitor.stats.episodes import Episode, episodes, window_states
 from monitor.stats.moments import moments_from_rows
-from monitor.stats.policy import (
-    bh_qvalues,
-    cue_columns,
-    flag_forbidden,
-    forbidden_cue_decomposition,
-)
+from monitor.stats.policy import bh_qvalues, flag_forbidden, forbidden_cue_decomposition
 from monitor.stats.trends import achievement_floor, below_floor, consistency_floor, weight_drift
 
 NUMERIC = ["amount", "gender", "delay", "witness"]  # "gender" sits mid-design on purpose

@@ -346,6 +346,3 @@ def _canonical_json(document: dict) -> bytes:
     return json.dumps(
         document, sort_keys=True, separators=(",", ":"), allow_nan=False, ensure_ascii=False
     ).encode("utf-8")
-
-
-# The wording lives in monitor.assess.wording; these names stay importable from here.

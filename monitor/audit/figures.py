@@ -16,9 +16,10 @@ import pandas as pd
 
 from monitor.audit.formats import Table, make_table, spec, table_from_columns
 from monitor.config import Config
-from monitor.stats.lens import fit_lens, fit_lens_rows, replace_rows, stack
+from monitor.stats.design import cue_of
+from monitor.stats.lens import CUE_FIGURES, LENS_FIGURES, fit_lens_or_rows
 from monitor.stats.moments import Moments, moments_from_rows
-from monitor.stats.policy import bh_qvalues, forbidden_cue_decomposition
+from monitor.stats.policy import bh_qvalues, forbidden_cue_decomposition, is_flagged
 
 DM_COLUMNS = (
     "scope:str decision_maker:str team:str n_decisions:int n_linked:int R_s R_e r_a G C "
@@ -68,14 +69,13 @@ def fit_masks(x, ys, ye, masks, names, min_rows: int):
     k = len(names)
     alls = _stack_moments([moments_from_rows(z[m][:, : k + 1]) for m in masks])
     links = _stack_moments([moments_from_rows(z[m & np.isfinite(ye)]) for m in masks])
-    fits = fit_lens(alls, links, names, min_rows=min_rows)
-    redo = np.flatnonzero(fits.needs_raw_refit)
-    if len(redo):
-        refits = [
-            fit_lens_rows(x[masks[i]], ys[masks[i]], ye[masks[i]], names, min_rows=min_rows)
-            for i in redo
-        ]
-        fits = replace_rows(fits, redo, stack(refits))
+    fits, _ = fit_lens_or_rows(
+        alls,
+        links,
+        names,
+        min_rows=min_rows,
+        rows_of=lambda i: (x[masks[i]], ys[masks[i]], ye[masks[i]]),
+    )
     return fits, alls
 
 
@@ -101,23 +101,11 @@ def quarter_tables(config: Config, rows, span: tuple[date, date]) -> list[Table]
     m, k = len(groups), len(names)
     dm = {"scope": scopes, "decision_maker": keys, "team": [g[2] for g in groups]}
     dm |= {"n_decisions": fits.n, "n_linked": fits.n_linked, "window_start": [first] * m}
-    dm |= {f: getattr(fits, f) for f in ("R_s", "R_e", "r_a", "G", "C", "model_of_judge_r")}
+    dm |= {f: getattr(fits, f) for f in LENS_FIGURES}
     dm |= {"window_end": [last] * m, "R_s_linked": fits.R_s_linked, "reason": _texts(fits.reason)}
     cw = {"scope": np.repeat(scopes, k), "decision_maker": np.repeat(keys, k)}
     cw |= {"cue": names * m, "n_decisions": np.repeat(fits.n, k)}
-    for col, field in (
-        ("weight", "weights"),
-        ("std_error", "std_errors"),
-        ("ci_low", "ci_low"),
-        ("ci_high", "ci_high"),
-        ("std_weight", "std_weights"),
-        ("utilization_r", "utilization_r"),
-        ("validity_r", "validity_r"),
-        ("p_value", "p_values"),
-        ("estimable", "estimable"),
-        ("t_value", "t_values"),
-        ("env_weight", "env_weights"),
-    ):
+    for col, field in CUE_FIGURES.items():
         cw[col] = getattr(fits, field).ravel()
     cw["reason"] = _texts(fits.cue_reason.ravel())
     makers = np.array([s == "decision_maker" for s, _, _, _ in groups])
@@ -180,9 +168,8 @@ def _forbidden_tables(config: Config, fits, moms, keys: list[str]) -> tuple[Tabl
                         parts[name].append(v)
     ok = np.array(cols["assessable"], dtype=bool)
     q = bh_qvalues(np.where(ok, np.array(cols["p_value"], dtype=float), np.nan))
-    size = np.abs(np.array(cols["std_weight"], dtype=float))
-    with np.errstate(invalid="ignore"):
-        cols["flagged"] = ok & (size >= policy.tolerance) & (q <= policy.fdr)
+    size = np.array(cols["std_weight"], dtype=float)
+    cols["flagged"] = is_flagged(ok, size, q, tolerance=policy.tolerance, fdr=policy.fdr)
     cols["q_value"] = q
     return (
         table_from_columns(
@@ -306,7 +293,7 @@ def _window_summary(config: Config, rows, span) -> Table:
             m = mask & (day > e - length) & (day <= e)
             if m.any():
                 plan.append((g, end, m))
-    forbidden = [j for j, n in enumerate(names) if n.split("=")[0] in config.policy.forbidden]
+    forbidden = [j for j, n in enumerate(names) if cue_of(n) in config.policy.forbidden]
     out = []
     if plan:
         masks = [p[2] for p in plan]

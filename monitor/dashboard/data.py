@@ -8,7 +8,7 @@ how long to retry); a missing store raises ``StoreMismatch``.
 
 The data-health page, the audit pack and launching the app live in
 ``monitor.dashboard.health``, ``monitor.dashboard.download`` and
-``monitor.dashboard.start``; their names stay importable from here.
+``monitor.dashboard.start``.
 """
 
 from __future__ import annotations

@@ -9,6 +9,7 @@ import numpy as np
 import pandas as pd
 
 from monitor.config import Config
+from monitor.stats.lens import LENS_FIGURES
 from monitor.store.connection import Store
 from monitor.store.rules import quote_ident
 
@@ -20,12 +21,7 @@ FIT_FIELDS = [
     "window_end",
     "n_decisions",
     "n_linked",
-    "R_s",
-    "R_e",
-    "r_a",
-    "G",
-    "C",
-    "model_of_judge_r",
+    *LENS_FIGURES,
 ]
 CUE_FIELDS = [
     "cue",

@@ -13,7 +13,7 @@ import numpy as np
 import pyarrow as pa
 
 from monitor import __version__
-from monitor.stats.lens import LensFits
+from monitor.stats.lens import CUE_FIGURES, LENS_FIGURES, LensFits
 from monitor.stats.moments import Moments
 from monitor.store.rules import quote_ident, utc_now
 
@@ -76,12 +76,7 @@ def fit_tables(
         "window_end": pa.array(end, pa.int32()).cast(pa.date32()),
         "n_decisions": pa.array(fits.n.astype(np.int64)),
         "n_linked": pa.array(fits.n_linked.astype(np.int64)),
-        "R_s": _nullable(fits.R_s),
-        "R_e": _nullable(fits.R_e),
-        "r_a": _nullable(fits.r_a),
-        "G": _nullable(fits.G),
-        "C": _nullable(fits.C),
-        "model_of_judge_r": _nullable(fits.model_of_judge_r),
+        **{f: _nullable(getattr(fits, f)) for f in LENS_FIGURES},
         "R_s_linked": _nullable(fits.R_s_linked),
         "judgment_mean": _nullable(all_w.mean[:, k]),
         "judgment_sd": _nullable(ys_sd),
@@ -106,16 +101,11 @@ def fit_tables(
         "window_end": window_end,
         "cue_index": pa.array(np.tile(np.arange(k, dtype=np.int32), m)),
         "cue": pa.array(np.tile(np.array(fits.names, dtype=object), m), pa.string()),
-        "weight": _nullable(fits.weights.ravel()),
-        "std_error": _nullable(fits.std_errors.ravel()),
-        "t_value": _nullable(fits.t_values.ravel()),
-        "p_value": _nullable(fits.p_values.ravel()),
-        "ci_low": _nullable(fits.ci_low.ravel()),
-        "ci_high": _nullable(fits.ci_high.ravel()),
-        "std_weight": _nullable(fits.std_weights.ravel()),
-        "utilization_r": _nullable(fits.utilization_r.ravel()),
-        "validity_r": _nullable(fits.validity_r.ravel()),
-        "env_weight": _nullable(fits.env_weights.ravel()),
+        **{
+            col: _nullable(getattr(fits, field).ravel())
+            for col, field in CUE_FIGURES.items()
+            if col != "estimable"
+        },
         "estimable": pa.array(fits.estimable.ravel().astype(bool)),
         "reason": pa.array([r or None for r in fits.cue_reason.ravel()], pa.string()),
     }

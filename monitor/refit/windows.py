@@ -47,7 +47,7 @@ from monitor.refit.plan import (
     latest_teams,
     pooled_windows,
 )
-from monitor.stats.lens import LensFits, fit_lens, fit_lens_rows, replace_rows, stack
+from monitor.stats.lens import LensFits, fit_lens_or_rows
 from monitor.store.connection import Store, get_fact, set_fact
 from monitor.store.rules import quote_ident, utc_now
 from monitor.store.schema import replace_bucket_tables
@@ -178,16 +178,17 @@ def fit_windows(
     ("moments" or "qr": refit from the window's raw rows when conditioning is poor)."""
     names = config.design_columns()
     min_rows = config.windows.min_rows
-    fits = fit_lens(windows.all_rows, windows.linked, names, min_rows=min_rows)
+    rows_of = None
+    if raw_rows is not None:
+
+        def rows_of(i: int):
+            return raw_rows(windows.scope, windows.keys[i], int(windows.end[i]))
+
+    fits, redone = fit_lens_or_rows(
+        windows.all_rows, windows.linked, names, min_rows=min_rows, rows_of=rows_of
+    )
     method = np.array(["moments"] * fits.size, dtype=object)
-    redo = np.flatnonzero(fits.needs_raw_refit)
-    if len(redo) and raw_rows is not None:
-        refits = []
-        for i in redo:
-            x, ys, ye = raw_rows(windows.scope, windows.keys[i], int(windows.end[i]))
-            refits.append(fit_lens_rows(x, ys, ye, names, min_rows=min_rows))
-        fits = replace_rows(fits, redo, stack(refits))
-        method[redo] = "qr"
+    method[redone] = "qr"
     return fits, method
 
 

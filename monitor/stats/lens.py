@@ -4,7 +4,7 @@ Everything here works on *stacks* of windows so that all windows of all
 decision-makers are solved in one vectorised call.
 
 The per-window inputs are the sufficient statistics of ``monitor.stats.moments``
-(``Moments``: count, mean, centred co-moment), re-exported here.
+(``Moments``: count, mean, centred co-moment).
 
 Contents: the batched fit from statistics (``fit_lens`` -> ``LensFits``, normal
 equations in correlation form); the raw-row fallback for poorly conditioned windows
@@ -13,23 +13,20 @@ equations in correlation form); the raw-row fallback for poorly conditioned wind
 
 from __future__ import annotations
 
-from collections.abc import Sequence
+from collections.abc import Callable, Sequence
 from dataclasses import dataclass, fields
 
 import numpy as np
 
-# The statistics live in their own module; re-exported so ``from monitor.stats.lens import
-# Moments`` keeps working.
+from monitor.stats.limits import (
+    COLLINEAR_CONDITION,
+    PIVOT_FLOOR,
+    RAW_REFIT_CONDITION,
+    is_constant,
+    t_half_width,
+    t_two_sided_p,
+)
 from monitor.stats.moments import Moments, moments_from_rows
-
-# A correlation matrix of the cues with a condition number beyond this is treated as
-# singular: the normal equations would keep fewer than ~4 significant digits, and in
-# floating point an exact linear dependency rarely shows as an exactly zero eigenvalue.
-COLLINEAR_CONDITION = 1e12
-PIVOT_FLOOR = 1e-13
-# A variable whose standard deviation is below this fraction of its mean's magnitude is
-# constant: rounding in the mean leaves a spread of a few ulps of |mean|, never more.
-CONSTANT_RTOL = 1e-10
 
 
 @dataclass(frozen=True)
@@ -91,6 +88,25 @@ class LensFits:
 
 _ARRAY_FIELDS = tuple(f.name for f in fields(LensFits) if f.name != "names")
 
+# The window figures of the lens model equation, named as everywhere else (the store's
+# ``fits`` table, ``fits --json``, the audit pack, the dashboard).
+LENS_FIGURES = ("R_s", "R_e", "r_a", "G", "C", "model_of_judge_r")
+# The per-cue figures: their column name in ``cue_weights`` (and the pack) -> the
+# ``LensFits`` field that holds them.
+CUE_FIGURES = {
+    "weight": "weights",
+    "std_error": "std_errors",
+    "t_value": "t_values",
+    "p_value": "p_values",
+    "ci_low": "ci_low",
+    "ci_high": "ci_high",
+    "std_weight": "std_weights",
+    "utilization_r": "utilization_r",
+    "validity_r": "validity_r",
+    "env_weight": "env_weights",
+    "estimable": "estimable",
+}
+
 
 def stack(fits: list[LensFits]) -> LensFits:
     """Concatenate fits over the same design columns into one stack, in order."""
@@ -132,8 +148,7 @@ def _diag(a: np.ndarray) -> np.ndarray:
 
 def _constant(mom: Moments) -> np.ndarray:
     """(m, p) bool: variable has no spread beyond rounding (all of an empty set)."""
-    sd = np.sqrt(np.maximum(_diag(mom.comoment), 0.0) / np.maximum(mom.n, 1.0)[:, None])
-    return sd <= CONSTANT_RTOL * np.abs(mom.mean)
+    return is_constant(_diag(mom.comoment), mom.n[:, None], mom.mean)
 
 
 def _cholesky_inverse(corr: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
@@ -237,12 +252,10 @@ def _solve_rows(x: np.ndarray, y: np.ndarray, ok: np.ndarray) -> _Ols:
 
 def _t_figures(b, se, df, alpha):
     """t values, two-sided p-values and interval bounds; df broadcast over cues."""
-    from scipy import special
-
     dfc = np.where(df > 0, df, np.nan)[:, None]
     t = b / se
-    p = 2.0 * special.stdtr(dfc, -np.abs(t))
-    half = special.stdtrit(dfc, 1.0 - alpha / 2.0) * se
+    p = t_two_sided_p(t, dfc)
+    half = t_half_width(se, dfc, alpha)
     return t, p, b - half, b + half
 
 
@@ -409,7 +422,7 @@ def fit_lens(
     *,
     min_rows: int = 0,
     alpha: float = 0.05,
-    cond_limit: float = 1e7,
+    cond_limit: float = RAW_REFIT_CONDITION,
 ) -> LensFits:
     """Lens-model fits of m windows at once from their sufficient statistics.
 
@@ -470,3 +483,24 @@ def _rows_or_moments(x, y, mom, ok) -> _Ols:
     if k_eff == 0 or x.shape[0] <= k_eff + 1:
         return _solve_moments(mom, x.shape[1], ok)
     return _solve_rows(x, y, ok[0])
+
+
+def fit_lens_or_rows(
+    all_rows: Moments,
+    linked: Moments | None,
+    names: Sequence[str],
+    *,
+    min_rows: int,
+    rows_of: Callable[[int], tuple[np.ndarray, np.ndarray, np.ndarray]] | None,
+) -> tuple[LensFits, np.ndarray]:
+    """``fit_lens``, then every window it flags ``needs_raw_refit`` refitted from its raw
+    rows by QR (``fit_lens_rows``); ``rows_of(i)`` returns window i's (x, ys, ye).
+
+    The one fallback rule of the refit stage and the audit pack.  Returns the fits and
+    the indices of the windows refitted from rows (none when ``rows_of`` is None)."""
+    fits = fit_lens(all_rows, linked, names, min_rows=min_rows)
+    redo = np.flatnonzero(fits.needs_raw_refit)
+    if not len(redo) or rows_of is None:
+        return fits, redo[:0]
+    refits = [fit_lens_rows(*rows_of(int(i)), names, min_rows=min_rows) for i in redo]
+    return replace_rows(fits, redo, stack(refits)), redo

@@ -6,7 +6,7 @@ are the window ``Moments`` over ``z = (x_1 .. x_k, Ys)`` and the judge fits; not
 reads the store or raises on a degenerate window: such a window gets NaN and a reason.
 
 Weight drift and the R_s / r_a floors live in ``monitor.stats.trends``, alert episodes in
-``monitor.stats.episodes``; their names stay importable from here.
+``monitor.stats.episodes``.
 """
 
 from __future__ import annotations
@@ -18,6 +18,8 @@ from typing import TYPE_CHECKING
 import numpy as np
 from scipy import stats
 
+from monitor.stats.design import cue_columns
+from monitor.stats.limits import is_constant, t_two_sided_p
 from monitor.stats.solves import batched_solve, judge_reasons
 
 if TYPE_CHECKING:
@@ -62,11 +64,6 @@ class ForbiddenCueDecomposition:
     indirect_joint_F: np.ndarray
     indirect_joint_p: np.ndarray
     reason: np.ndarray
-
-
-def cue_columns(names: Sequence[str], cue: str) -> list[int]:
-    """Design-column indices of a cue: its own column, or its dummies named ``cue=level``."""
-    return [j for j, name in enumerate(names) if name == cue or name.startswith(f"{cue}=")]
 
 
 def _wald_f(
@@ -121,15 +118,11 @@ def forbidden_cue_decomposition(
     # A proxy the fit could not estimate is harmless only if it is constant (delta = 0);
     # otherwise the partial weights are not identified and neither is the split.
     p_est = np.asarray(fits.estimable)[:, p_idx]
-    # Constant means sd <= 1e-10 |mean| (rounding spread), the rule monitor.stats.lens uses.
-    scale_p = all_rows.n[:, None] * np.maximum(all_rows.mean[:, p_idx] ** 2, 1e-300)
-    p_const = var_p <= 1e-20 * scale_p
+    p_const = is_constant(var_p, all_rows.n[:, None], all_rows.mean[:, p_idx])
     bad_p = fitted & f_est & (~p_est & ~p_const).any(axis=1)
     reason[bad_p] = "a permitted cue is not estimable (collinear), split not identified"
     ok = reason == ""
-    # Same relative rule as a constant cue: a spread of rounding size is no spread.
-    mean_y = all_rows.mean[:, k]
-    bad_y = ok & (var_y <= 1e-20 * all_rows.n * np.maximum(mean_y**2, 1e-300))
+    bad_y = ok & is_constant(var_y, all_rows.n, all_rows.mean[:, k])
     reason[bad_y] = "constant judgment"
     ok = reason == ""
 
@@ -154,7 +147,7 @@ def forbidden_cue_decomposition(
     df = np.asarray(fits.df_resid, dtype=float)
     df_safe = np.where(df > 0, df, np.nan)[:, None]
     with np.errstate(divide="ignore", invalid="ignore"):
-        ind_p = 2 * stats.t.sf(np.abs(indirect / ind_se), df_safe)
+        ind_p = t_two_sided_p(indirect / ind_se, df_safe)
         to_std = np.sqrt(var_f / np.where(var_y > 0, var_y, np.nan)[:, None])
 
     v_ff = cov[:, f_idx][:, :, f_idx]
@@ -253,6 +246,17 @@ def _largest(values: np.ndarray, columns: tuple[str, ...]) -> tuple[np.ndarray, 
     return values[np.arange(len(values)), at], np.asarray(columns, dtype=object)[at]
 
 
+def is_flagged(
+    assessable: np.ndarray, size: np.ndarray, q_value: np.ndarray, *, tolerance: float, fdr: float
+) -> np.ndarray:
+    """When a forbidden-cue figure is a finding: the window is assessable, the
+    standardised size is material (|size| >= tolerance) and the evidence survives the
+    false-discovery-rate control (BH q <= fdr).  The one rule used by assess (direct and
+    proxy use) and by the audit pack."""
+    with np.errstate(invalid="ignore"):
+        return np.asarray(assessable, bool) & (np.abs(size) >= tolerance) & (q_value <= fdr)
+
+
 def flag_forbidden(
     decompositions: Sequence[ForbiddenCueDecomposition],
     *,
@@ -290,9 +294,8 @@ def flag_forbidden(
         assessable = d.reason == ""
         size, column = _largest(d.std_direct, d.columns)
         psize, _ = _largest(d.std_indirect, d.columns)
-        with np.errstate(invalid="ignore"):
-            flagged = assessable & (np.abs(size) >= tolerance) & (q[c] <= fdr)
-            pflagged = assessable & (np.abs(psize) >= tolerance) & (pq[c] <= fdr)
+        flagged = is_flagged(assessable, size, q[c], tolerance=tolerance, fdr=fdr)
+        pflagged = is_flagged(assessable, psize, pq[c], tolerance=tolerance, fdr=fdr)
         out.append(
             ForbiddenCueFlags(
                 d.cue, size, column, p[c], q[c], flagged, psize, pp[c], pq[c], pflagged, assessable

@@ -11,11 +11,10 @@ from typing import TYPE_CHECKING
 
 import numpy as np
 
+from monitor.stats.limits import COLLINEAR_CONDITION
+
 if TYPE_CHECKING:
     from monitor.stats.lens import LensFits
-
-# Above this condition number a block is treated as singular (common practice for float64).
-_COND_LIMIT = 1e12
 
 
 def judge_reasons(fits: LensFits) -> np.ndarray:
@@ -40,7 +39,7 @@ def batched_solve(a: np.ndarray, b: np.ndarray, ok: np.ndarray) -> tuple[np.ndar
     finite = np.isfinite(a).all(axis=(1, 2)) & np.isfinite(b).reshape(len(b), -1).all(axis=1)
     ok = ok & finite
     safe = np.where(ok[:, None, None], np.nan_to_num(a), eye)
-    ok = ok & (np.linalg.cond(safe) < _COND_LIMIT)
+    ok = ok & (np.linalg.cond(safe) < COLLINEAR_CONDITION)
     safe = np.where(ok[:, None, None], safe, eye)
     rhs = np.nan_to_num(b)
     x = np.linalg.solve(safe, rhs[..., None] if rhs.ndim == 2 else rhs)

@@ -13,6 +13,7 @@ from typing import TYPE_CHECKING
 import numpy as np
 from scipy import stats
 
+from monitor.stats.limits import normal_two_sided_p
 from monitor.stats.solves import batched_solve, judge_reasons
 
 if TYPE_CHECKING:
@@ -62,7 +63,7 @@ def weight_drift(first: LensFits, second: LensFits) -> WeightDrift:
     with np.errstate(invalid="ignore"):
         se = np.where(both, np.sqrt(var), np.nan)
         z = change / se
-    p = 2 * stats.norm.sf(np.abs(z))
+    p = normal_two_sided_p(z)
     # Columns outside the common set become identity rows with zero change, so every
     # window solves at full size and the skipped columns add nothing to the statistic.
     mask2 = both[:, :, None] & both[:, None, :]
