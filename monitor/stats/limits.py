@@ -53,4 +53,4 @@ def normal_two_sided_p(z: np.ndarray) -> np.ndarray:
     """Two-sided p-values of standard normal statistics."""
     from scipy import special
 
-    return special.erfc(np.abs(z) / np.sqrt(2.0))
+    return 2.0 * special.ndtr(-np.abs(z))
