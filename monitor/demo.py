@@ -15,14 +15,29 @@ from pathlib import Path
 
 from monitor.cautions import CAUTION
 from monitor.config import Config, load_config
+from monitor.errors import UserError
 
 REPO_CONFIG = Path(__file__).resolve().parent.parent / "config" / "ostwyn.toml"
 DAILY_TAIL_DAYS = 35  # the last five weeks arrive day by day
 
 
+class DemoUnavailable(UserError):
+    """The demo needs the repository's config/ostwyn.toml, which a wheel does not carry."""
+
+
+def demo_config_text() -> str:
+    """The demo configuration's text; DemoUnavailable outside a source checkout."""
+    if not REPO_CONFIG.is_file():
+        raise DemoUnavailable(
+            f"the demo needs config/{REPO_CONFIG.name} from the cuewatch source tree "
+            f"(looked for {REPO_CONFIG}); run `cuewatch demo` from a checkout."
+        )
+    return REPO_CONFIG.read_text(encoding="utf-8")
+
+
 def write_demo_config(demo_dir: Path) -> Path:
     """Copy the demo configuration into ``demo_dir`` with its paths pointing there."""
-    text = REPO_CONFIG.read_text(encoding="utf-8")
+    text = demo_config_text()
     text = text.replace('"../demo_run/', '"./')
     target = demo_dir / "ostwyn.toml"
     target.write_text(text, encoding="utf-8")
@@ -34,6 +49,7 @@ def prepare(demo_dir: Path, *, seed: int = 7, days: int = 730, n_handlers: int =
     arguments), empty landing folders and store."""
     from synthetic_logs.ostwyn import generate, load_truth
 
+    demo_config_text()  # before generating two years of logs for nothing
     demo_dir.mkdir(parents=True, exist_ok=True)
     scenario = demo_dir / "scenario"
     try:
