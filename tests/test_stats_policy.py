@@ -179,12 +179,23 @@ def test_indirect_standard_error_matches_difference_of_nested_fits():
     windows = [_rows(rng, n, direct=0.2) for n in (80, 500)]
     dec = _decompose(windows, NUMERIC, "gender")
     for w, (x, y) in enumerate(windows):
-        # Source: statsmodels fits; Var(zero-order - partial slope) =
-        # Var_full(b_f) - sigma_full^2 [(F'F)^-1]_ff  (Clogg, Petkova & Haritou 1995, from memory).
+        # Source: statsmodels fits.  The part of the variance from the judge weights, the
+        # proxies' imbalance held fixed: Var_full(b_f) - sigma_full^2 [(F'F)^-1]_ff, the
+        # difference between a zero-order and a partial slope (Clogg, Petkova & Haritou
+        # 1995, from memory).
         full = sm.OLS(y, sm.add_constant(x)).fit()
         reduced = sm.OLS(y, sm.add_constant(x[:, [1]])).fit()
-        var = full.bse[2] ** 2 - full.scale * reduced.normalized_cov_params[1, 1]
-        np.testing.assert_allclose(dec.indirect_se[w, 0], np.sqrt(var), rtol=1e-8)
+        held = full.bse[2] ** 2 - full.scale * reduced.normalized_cov_params[1, 1]
+        # The part from the imbalance itself (Sobel 1982): b_P' Var(delta) b_P with
+        # Var(delta_p, delta_q) = cov(resid_p, resid_q) [(F'F)^-1]_ff, from statsmodels
+        # regressions of each proxy on F alone.
+        proxies = [0, 2, 3]
+        fits = [sm.OLS(x[:, j], sm.add_constant(x[:, [1]])).fit() for j in proxies]
+        resid = np.column_stack([f.resid for f in fits])
+        sigma_pf = resid.T @ resid / fits[0].df_resid
+        b_p = full.params[[1, 3, 4]]
+        spread = b_p @ sigma_pf @ b_p * fits[0].normalized_cov_params[1, 1]
+        np.testing.assert_allclose(dec.indirect_se[w, 0], np.sqrt(held + spread), rtol=1e-8)
 
 
 def test_degenerate_windows_give_nan_and_reason_without_raising():

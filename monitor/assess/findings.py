@@ -16,7 +16,9 @@ import numpy as np
 import pandas as pd
 
 from monitor.config import Config
+from monitor.stats.design import level_of
 from monitor.stats.lens import LensFits, fit_lens
+from monitor.stats.limits import normal_half_width
 from monitor.stats.moments import Moments
 from monitor.stats.policy import flag_forbidden, forbidden_cue_decomposition
 from monitor.stats.trends import achievement_floor, consistency_floor, weight_drift
@@ -124,7 +126,7 @@ def forbidden_findings(config: Config, w: StoredWindows) -> tuple[pd.DataFrame, 
     frames, proxies = [], []
     for d, fl, flp in zip(decomps, flags, flags_proxy, strict=True):
         for j, column in enumerate(d.columns):
-            level = column.split("=", 1)[1] if "=" in column else None
+            level = level_of(column)
             col = names.index(column)
             scale = _std_scale(w, col)[idx]
             for kind in ("forbidden_direct", "forbidden_proxy"):
@@ -147,9 +149,8 @@ def forbidden_findings(config: Config, w: StoredWindows) -> tuple[pd.DataFrame, 
                     rows["statistic"] = d.joint_F
                     rows["flagged"] = fl.flagged
                 else:
-                    half = 1.959963984540054 * d.indirect_se[:, j] * scale
-                    rows["ci_low"] = d.std_indirect[:, j] - half
-                    rows["ci_high"] = d.std_indirect[:, j] + half
+                    rows["ci_low"] = d.indirect_ci_low[:, j] * scale
+                    rows["ci_high"] = d.indirect_ci_high[:, j] * scale
                     rows["p_value"] = d.indirect_p[:, j]
                     rows["q_value"] = flp.proxy_q_value
                     rows["statistic"] = d.indirect_joint_F
@@ -206,7 +207,7 @@ def drift_findings(config: Config, w: StoredWindows) -> pd.DataFrame:
         rows["level"] = None
         rows["direct"] = drift.change[:, j]
         rows["std_weight"] = drift.change[:, j] * scale
-        half = 1.959963984540054 * drift.std_error[:, j] * scale
+        half = normal_half_width(drift.std_error[:, j] * scale, 0.05)
         rows["ci_low"] = rows["std_weight"] - half
         rows["ci_high"] = rows["std_weight"] + half
         rows["p_value"] = drift.p_value[:, j]

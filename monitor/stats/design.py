@@ -23,6 +23,13 @@ def cue_of(column: str) -> str:
     return str(column).split(LEVEL_SEPARATOR, 1)[0]
 
 
+def level_of(column: str) -> str | None:
+    """The level a dummy column stands for (``cue=level`` -> ``level``), None for a
+    numeric or binary cue's column."""
+    _, sep, level = str(column).partition(LEVEL_SEPARATOR)
+    return level if sep else None
+
+
 def cue_columns(names: Sequence[str], cue: str) -> list[int]:
     """Indices of the design columns among ``names`` that belong to ``cue``."""
     return [j for j, name in enumerate(names) if cue_of(name) == cue]

@@ -49,6 +49,13 @@ def t_half_width(se: np.ndarray, df: np.ndarray, alpha: float) -> np.ndarray:
     return special.stdtrit(df, 1.0 - alpha / 2.0) * se
 
 
+def normal_half_width(se: np.ndarray, alpha: float) -> np.ndarray:
+    """Half-width of the two-sided (1 - alpha) normal interval: z_{1-alpha/2} * se."""
+    from scipy import special
+
+    return special.ndtri(1.0 - alpha / 2.0) * se
+
+
 def normal_two_sided_p(z: np.ndarray) -> np.ndarray:
     """Two-sided p-values of standard normal statistics."""
     from scipy import special

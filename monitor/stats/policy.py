@@ -19,7 +19,7 @@ import numpy as np
 from scipy import stats
 
 from monitor.stats.design import cue_columns
-from monitor.stats.limits import is_constant, t_two_sided_p
+from monitor.stats.limits import is_constant, t_half_width, t_two_sided_p
 from monitor.stats.solves import batched_solve, judge_reasons
 
 if TYPE_CHECKING:
@@ -54,7 +54,10 @@ class ForbiddenCueDecomposition:
     indirect: np.ndarray
     indirect_se: np.ndarray
     indirect_p: np.ndarray
+    indirect_ci_low: np.ndarray
+    indirect_ci_high: np.ndarray
     proxy_parts: np.ndarray
+    proxy_part_se: np.ndarray
     std_disparity: np.ndarray
     std_direct: np.ndarray
     std_indirect: np.ndarray
@@ -87,11 +90,19 @@ def forbidden_cue_decomposition(
     column order as ``fits``.  With F the cue's columns and P the others:
     disparity = slope of Ys on F alone, direct = b_F of the full judge model, and
     indirect = disparity - direct = sum_k b_k delta_k, delta_k the slope of x_k on F alone
-    (the omitted-variable identity, exact for OLS).  ``indirect_se`` treats delta as fixed,
-    which it is conditional on the cues, so Var = delta' V_PP delta is exact under the
-    judge model's assumptions; it equals V_full(b_F) - sigma^2 (F'F)^-1, the classic
-    test of a difference between a zero-order and a partial slope (Clogg, Petkova &
-    Haritou 1995, from memory).  A constant proxy contributes 0.
+    (the omitted-variable identity, exact for OLS).
+
+    ``indirect_se`` is the unconditional (first-order delta-method) standard error of the
+    product b_P' delta: Var = delta' V_PP delta + b_P' Var(delta) b_P, where Var(delta) =
+    Sigma_P|F (x) S_FF^-1 comes from the regression of the proxies on F in the same
+    moments (Sobel 1982, Sociological Methodology; MacKinnon, Lockwood, Hoffman, West &
+    Sheets 2002, Psychological Methods 7(1), who compare it with other tests of an
+    indirect effect).  Treating delta as fixed (the first term alone) asks whether the
+    indirect part is zero *in this sample*, which it almost never is: on a cue with no
+    proxy path in the population it rejected in most windows.  ``proxy_part_se`` is the
+    same for each proxy's part b_p delta_p.  p-values and intervals use the t
+    distribution with the judge model's residual degrees of freedom, as the weights do.
+    A constant proxy contributes 0.
     Raises ValueError only for a cue that has no column (a configuration bug).
     """
     names = tuple(fits.names)
@@ -142,12 +153,32 @@ def forbidden_cue_decomposition(
 
     cov = np.asarray(fits.cov, dtype=float)
     v_pp = np.nan_to_num(cov[:, p_idx][:, :, p_idx])
-    ind_cov = np.einsum("mfp,mpq,mgq->mfg", np.nan_to_num(delta), v_pp, np.nan_to_num(delta))
+    d0, bp0 = np.nan_to_num(delta), np.nan_to_num(b_p)
+    # Sampling error of the judge weights, the proxies' imbalance held at its estimate ...
+    ind_cov = np.einsum("mfp,mpq,mgq->mfg", d0, v_pp, d0)
+    # ... plus the sampling error of the imbalance itself: Var(delta) = Sigma_P|F (x)
+    # S_FF^-1, Sigma_P|F the residual covariance of the proxies given F.
+    n_f = len(f_idx)
+    dof_delta = np.where(ok, all_rows.n - n_f - 1.0, np.nan)
+    s_pp = np.nan_to_num(m_all[:, p_idx][:, :, p_idx])
+    resid_pp = (s_pp - np.einsum("mfp,mfq->mpq", np.nan_to_num(s_fp), d0)) / np.where(
+        dof_delta > 0, dof_delta, np.nan
+    )[:, None, None]
+    s_ff_inv, _ = batched_solve(s_ff, np.broadcast_to(np.eye(n_f), s_ff.shape).copy(), ok)
+    spread = np.einsum("mp,mpq,mq->m", bp0, np.nan_to_num(resid_pp), bp0)
+    ind_cov = ind_cov + spread[:, None, None] * np.nan_to_num(s_ff_inv)
     ind_se = np.sqrt(np.diagonal(ind_cov, axis1=1, axis2=2)) * col
+    part_var = (
+        d0**2 * np.diagonal(v_pp, axis1=1, axis2=2)[:, None, :]
+        + (bp0**2 * np.nan_to_num(np.diagonal(resid_pp, axis1=1, axis2=2)))[:, None, :]
+        * np.nan_to_num(np.diagonal(s_ff_inv, axis1=1, axis2=2))[:, :, None]
+    )
+    part_se = np.sqrt(part_var) * col[:, :, None]
     df = np.asarray(fits.df_resid, dtype=float)
     df_safe = np.where(df > 0, df, np.nan)[:, None]
     with np.errstate(divide="ignore", invalid="ignore"):
         ind_p = t_two_sided_p(indirect / ind_se, df_safe)
+        ind_half = t_half_width(ind_se, df_safe, 0.05)
         to_std = np.sqrt(var_f / np.where(var_y > 0, var_y, np.nan)[:, None])
 
     v_ff = cov[:, f_idx][:, :, f_idx]
@@ -173,7 +204,10 @@ def forbidden_cue_decomposition(
         indirect=indirect,
         indirect_se=ind_se,
         indirect_p=ind_p,
+        indirect_ci_low=indirect - ind_half,
+        indirect_ci_high=indirect + ind_half,
         proxy_parts=parts,
+        proxy_part_se=part_se,
         std_disparity=disparity * to_std,
         std_direct=np.asarray(fits.std_weights)[:, f_idx] * col,
         std_indirect=indirect * to_std,
