@@ -11,10 +11,11 @@ from __future__ import annotations
 
 import numpy as np
 import statsmodels.api as sm
+from statsmodels.stats.multitest import multipletests
 
 from monitor.stats.lens import fit_lens
 from monitor.stats.moments import Moments, moments_from_rows
-from monitor.stats.policy import forbidden_cue_decomposition
+from monitor.stats.policy import bh_qvalues, forbidden_cue_decomposition
 
 NAMES = ["amount", "delay", "gender"]
 
@@ -97,3 +98,15 @@ def test_indirect_standard_error_agrees_with_the_monte_carlo_product_distributio
     np.testing.assert_allclose(dec.indirect[0, 0], judge.params[1] * med.params[1], rtol=1e-9)
     # Monte Carlo error of an sd from 200,000 draws: about 0.2 %.
     np.testing.assert_allclose(dec.indirect_se[0, 0], draws.std(), rtol=0.02)
+
+
+def test_bh_qvalues_keep_precision_for_tiny_p_values():
+    # Source: statsmodels.stats.multitest.multipletests (fdr_bh), per family.  p-values far
+    # below 1e-13 must not collapse to 0 (and so fall below their own p).
+    p = np.array([1e-40, 3e-35, 2e-31, 0.01, 0.2, 5e-300, 1e-16, 0.04, 0.5, 0.03])
+    groups = np.array([0, 0, 0, 0, 0, 1, 1, 1, 1, 2])
+    q = bh_qvalues(p, groups)
+    for g in np.unique(groups):
+        ref = multipletests(p[groups == g], method="fdr_bh")[1]
+        np.testing.assert_allclose(q[groups == g], ref, rtol=1e-12, atol=0)
+    assert (q >= p).all()

@@ -241,10 +241,11 @@ def bh_qvalues(p_values: np.ndarray, groups: np.ndarray | None = None) -> np.nda
     sizes = np.diff(np.r_[starts, gs.size])
     rank = np.arange(gs.size) - np.repeat(starts, sizes) + 1
     raw = np.minimum(1.0, ps * np.repeat(sizes, sizes) / rank)
-    # Offsetting each family by 2 x its position keeps the running minimum (taken from
-    # the end) from leaking from one family into the one before it.
-    offset = 2.0 * np.repeat(np.arange(starts.size), sizes)
-    qs = np.minimum.accumulate((raw + offset)[::-1])[::-1] - offset
+    # The running minimum from the end, family by family: no arithmetic on the values,
+    # so a q-value keeps every digit of its p (a shared offset lost those below ~1e-13).
+    qs = np.concatenate(
+        [np.minimum.accumulate(part[::-1])[::-1] for part in np.split(raw, starts[1:])]
+    )
     q[live[order]] = qs
     return q.reshape(p.shape)
 
