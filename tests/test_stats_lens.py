@@ -317,7 +317,10 @@ def test_constant_judgment():
         assert np.isnan(fit.R_s[0]) and np.isnan(fit.std_weights).all()
         assert np.isnan(fit.utilization_r).all() and np.isnan(fit.G[0]) and np.isnan(fit.r_a[0])
         assert "judgment constant in window" in fit.reason[0]
-        np.testing.assert_allclose(fit.weights[0], 0.0, atol=1e-12)
+        # Nothing to explain: the weights are not estimable (not 0 with SE 0 and CI [0, 0]).
+        assert np.isnan(fit.weights[0]).all() and np.isnan(fit.std_errors[0]).all()
+        assert np.isnan(fit.ci_low[0]).all() and not fit.estimable[0].any()
+        assert (fit.cue_reason[0] == "judgment constant in window").all()
         assert np.isfinite(fit.R_e[0])  # the environment model does not need the judgment
 
 

@@ -282,7 +282,9 @@ def _judge_figures(mom: Moments, ols: _Ols, ok, need, alpha):
     var_x = _diag(mom.comoment)[:, :k]
     too_few = n < need
     y_const = _constant(mom)[:, k]
-    bad = too_few | ols.collinear
+    # A constant judgment has nothing to explain: its weights are not zero-with-SE-zero,
+    # they are not estimable.
+    bad = too_few | ols.collinear | y_const
     fitted = ok & ~bad[:, None]
     df = n - ok.sum(axis=1) - 1.0
     with np.errstate(divide="ignore", invalid="ignore"):
@@ -375,6 +377,7 @@ def _assemble(names, all_rows, linked, judge, pair, ok, ok_l, min_rows, alpha, c
     cue_reason[collinear] = np.where(
         ok[collinear], "cues perfectly collinear", "constant in window"
     )
+    cue_reason[y_const & ~too_few] = "judgment constant in window"
     cue_reason[too_few] = "too few rows"
     refit = ~too_few & ~judge.collinear & (judge.condition > cond_limit)
     if linked is None:
