@@ -149,6 +149,13 @@ class PolicyConfig(_Strict):
     min_rows: int = Field(100, ge=3)
     drift_alpha: float = Field(0.001, gt=0, lt=1)
     drift_min_std_change: float = Field(0.10, ge=0)
+    # How a weekly look decides "flagged" (monitor.stats.monitoring): "calibrated" uses
+    # control limits set for a false-alarm rate per innocent person-cue-year;
+    # "per_window_fdr" is the earlier rule (BH q <= fdr within one window end; drift
+    # p < drift_alpha), kept for comparison.
+    alert_rule: Literal["calibrated", "per_window_fdr"] = "calibrated"
+    false_alerts_per_100_years: float = Field(0.5, gt=0, le=100)
+    drift_false_alerts_per_100_years: float = Field(0.25, gt=0, le=100)
     consistency_floor: float | None = Field(0.5, ge=0, le=1)
     achievement_floor: float | None = Field(None, ge=-1, le=1)
     achievement_min_linked: int = Field(100, ge=3)

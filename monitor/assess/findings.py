@@ -20,6 +20,7 @@ from monitor.stats.design import level_of
 from monitor.stats.lens import LensFits, fit_lens
 from monitor.stats.limits import normal_half_width
 from monitor.stats.moments import Moments
+from monitor.stats.monitoring import drift_limit, forbidden_cue_limit
 from monitor.stats.policy import flag_forbidden, forbidden_cue_decomposition
 from monitor.stats.trends import achievement_floor, consistency_floor, weight_drift
 
@@ -114,12 +115,16 @@ def forbidden_findings(config: Config, w: StoredWindows) -> tuple[pd.DataFrame, 
     ends = w.meta["window_end"].to_numpy()[idx]
     family = pd.factorize(ends)[0]
     tol = config.policy.tolerance
-    flags = flag_forbidden(decomps, tolerance=tol, fdr=config.policy.fdr, family=family)
+    limit = forbidden_cue_limit(config.policy, config.windows)
+    rule = {
+        "fdr": config.policy.fdr,
+        "family": family,
+        "p_limit": None if limit is None else limit.p_limit,
+    }
+    flags = flag_forbidden(decomps, tolerance=tol, **rule)
     proxy_tol = config.policy.proxy_tolerance or tol
     if proxy_tol != tol:
-        flags_proxy = flag_forbidden(
-            decomps, tolerance=proxy_tol, fdr=config.policy.fdr, family=family
-        )
+        flags_proxy = flag_forbidden(decomps, tolerance=proxy_tol, **rule)
     else:
         flags_proxy = flags
     names = list(w.fits.names)
@@ -197,7 +202,10 @@ def drift_findings(config: Config, w: StoredWindows) -> pd.DataFrame:
         return pd.DataFrame(columns=FINDING_COLUMNS)
     first, second = w.fits.take(cur), w.fits.take(prev[cur])
     drift = weight_drift(first, second)
-    alpha, min_std = config.policy.drift_alpha, config.policy.drift_min_std_change
+    limit = drift_limit(config.policy, config.windows)
+    # Calibrated rule: the control limit's p (flag when p <= it); else the fixed alpha.
+    alpha = config.policy.drift_alpha if limit is None else np.nextafter(limit.p_limit, 1.0)
+    min_std = config.policy.drift_min_std_change
     frames = []
     names = list(w.fits.names)
     for j, column in enumerate(names):

@@ -19,6 +19,7 @@ from monitor.config import Config
 from monitor.stats.design import cue_of
 from monitor.stats.lens import CUE_FIGURES, LENS_FIGURES, fit_lens_or_rows
 from monitor.stats.moments import Moments, moments_from_rows
+from monitor.stats.monitoring import forbidden_cue_limit
 from monitor.stats.policy import bh_qvalues, forbidden_cue_decomposition, is_flagged
 
 DM_COLUMNS = (
@@ -169,7 +170,13 @@ def _forbidden_tables(config: Config, fits, moms, keys: list[str]) -> tuple[Tabl
     ok = np.array(cols["assessable"], dtype=bool)
     q = bh_qvalues(np.where(ok, np.array(cols["p_value"], dtype=float), np.nan))
     size = np.array(cols["std_weight"], dtype=float)
-    cols["flagged"] = is_flagged(ok, size, q, tolerance=policy.tolerance, fdr=policy.fdr)
+    # The same rule as the weekly alerts: the quarter is one look at a window of its own.
+    limit = forbidden_cue_limit(policy, config.windows)
+    if limit is None:
+        evidence, level = q, policy.fdr
+    else:
+        evidence, level = np.array(cols["p_value"], dtype=float), limit.p_limit
+    cols["flagged"] = is_flagged(ok, size, evidence, tolerance=policy.tolerance, level=level)
     cols["q_value"] = q
     return (
         table_from_columns(

@@ -31,6 +31,7 @@ from monitor.audit.report import methodology_text, write_html
 from monitor.config import Config
 from monitor.errors import UserError
 from monitor.refit.buckets import design_expressions
+from monitor.stats.monitoring import drift_limit, forbidden_cue_limit
 from monitor.store.connection import Store
 from monitor.store.rules import current_outcome_rows_sql, ingested_by, quote_ident, utc_now
 
@@ -344,12 +345,11 @@ def export(
         "compare_as_of": [iso(parse_as_of(c, tz)[0]) for c in compare] if compare else None,
         "config_digest": config.digest,
         "config_path": str(config.source) if config.source else None,
-        "policy": {
-            "forbidden": list(config.policy.forbidden),
-            "tolerance": config.policy.tolerance,
-            "fdr": config.policy.fdr,
-            "min_rows": config.windows.min_rows,
-        },
+        # Every policy and window setting under its own key, and the control limits the
+        # alert rule derived from them.
+        "policy": config.policy.model_dump(mode="json"),
+        "windows": config.windows.model_dump(mode="json"),
+        "control_limits": _control_limits(config),
         "store_fingerprint": fp,
         "software": {"name": "cuewatch", "version": __version__},
         "created_at": iso(created),
@@ -426,3 +426,14 @@ def _summary(label, as_of, tables: list[Table], out_dir, compare: bool, warnings
     lines = [f"{head}; tables written to {out_dir}."]
     lines += [f"WARNING: {w}" for w in warnings]
     return "\n".join(lines)
+
+
+def _control_limits(config: Config) -> dict:
+    """The calibrated limits of the weekly looks (empty under the per-window FDR rule)."""
+    from dataclasses import asdict
+
+    limits = {
+        "forbidden_cue": forbidden_cue_limit(config.policy, config.windows),
+        "drift": drift_limit(config.policy, config.windows),
+    }
+    return {name: asdict(limit) for name, limit in limits.items() if limit is not None}

@@ -282,14 +282,20 @@ def _largest(values: np.ndarray, columns: tuple[str, ...]) -> tuple[np.ndarray, 
 
 
 def is_flagged(
-    assessable: np.ndarray, size: np.ndarray, q_value: np.ndarray, *, tolerance: float, fdr: float
+    assessable: np.ndarray,
+    size: np.ndarray,
+    evidence: np.ndarray,
+    *,
+    tolerance: float,
+    level: float,
 ) -> np.ndarray:
     """When a forbidden-cue figure is a finding: the window is assessable, the
-    standardised size is material (|size| >= tolerance) and the evidence survives the
-    false-discovery-rate control (BH q <= fdr).  The one rule used by assess (direct and
-    proxy use) and by the audit pack."""
+    standardised size is material (|size| >= tolerance) and the evidence is strong
+    enough (``evidence`` <= ``level``: the p-value against the calibrated control limit,
+    or the BH q-value against the FDR level under the per-window rule).  The one rule
+    used by assess (direct and proxy use) and by the audit pack."""
     with np.errstate(invalid="ignore"):
-        return np.asarray(assessable, bool) & (np.abs(size) >= tolerance) & (q_value <= fdr)
+        return np.asarray(assessable, bool) & (np.abs(size) >= tolerance) & (evidence <= level)
 
 
 def flag_forbidden(
@@ -298,6 +304,7 @@ def flag_forbidden(
     tolerance: float,
     fdr: float,
     family: np.ndarray | None = None,
+    p_limit: float | None = None,
 ) -> list[ForbiddenCueFlags]:
     """Flag direct and proxy use of every forbidden cue over the same m windows.
 
@@ -306,7 +313,9 @@ def flag_forbidden(
     |size| >= tolerance and q <= fdr.  A proxy finding needs |standardised indirect| >=
     tolerance and its own q <= fdr, its p from the exact conditional test of the
     indirect part (see ``forbidden_cue_decomposition``); its family is separate so that
-    reporting proxies cannot dilute or inflate the direct findings.
+    reporting proxies cannot dilute or inflate the direct findings.  With ``p_limit``
+    (a calibrated control limit, ``monitor.stats.monitoring``) a window is flagged on
+    its own p-value instead (p <= p_limit); the q-values are still reported.
     """
     if not decompositions:
         return []
@@ -329,8 +338,12 @@ def flag_forbidden(
         assessable = d.reason == ""
         size, column = _largest(d.std_direct, d.columns)
         psize, _ = _largest(d.std_indirect, d.columns)
-        flagged = is_flagged(assessable, size, q[c], tolerance=tolerance, fdr=fdr)
-        pflagged = is_flagged(assessable, psize, pq[c], tolerance=tolerance, fdr=fdr)
+        if p_limit is None:
+            flagged = is_flagged(assessable, size, q[c], tolerance=tolerance, level=fdr)
+            pflagged = is_flagged(assessable, psize, pq[c], tolerance=tolerance, level=fdr)
+        else:
+            flagged = is_flagged(assessable, size, p[c], tolerance=tolerance, level=p_limit)
+            pflagged = is_flagged(assessable, psize, pp[c], tolerance=tolerance, level=p_limit)
         out.append(
             ForbiddenCueFlags(
                 d.cue, size, column, p[c], q[c], flagged, psize, pp[c], pq[c], pflagged, assessable
