@@ -242,8 +242,20 @@ def drift_findings(config: Config, w: StoredWindows) -> pd.DataFrame:
     return pd.concat(frames, ignore_index=True)
 
 
+def _floor_interval(rows: pd.DataFrame, check) -> None:
+    """The floor check's interval (and bias-adjusted estimate) beside its statistic."""
+    if check.ci_low is not None:
+        rows["std_weight"] = check.estimate
+        rows["ci_low"], rows["ci_high"] = check.ci_low, check.ci_high
+
+
 def floor_findings(config: Config, w: StoredWindows) -> pd.DataFrame:
+    """Consistency and achievement below their floors.  Under the calibrated rule the
+    floor is crossed when the figure's interval (at the forbidden-cue checks' control
+    limit) lies wholly below it."""
     pol = config.policy
+    limit = forbidden_cue_limit(pol, config.windows)
+    z = None if limit is None else limit.z
     idx = np.flatnonzero(w.meta["scope"].to_numpy() == "decision_maker")
     frames = []
     stored = w.fits.take(idx)
@@ -251,10 +263,11 @@ def floor_findings(config: Config, w: StoredWindows) -> pd.DataFrame:
     if pol.consistency_floor is not None:
         r_s = meta["R_s"].to_numpy(dtype=float)
         check = consistency_floor(
-            _with(stored, R_s=r_s), floor=pol.consistency_floor, min_rows=pol.min_rows
+            _with(stored, R_s=r_s), floor=pol.consistency_floor, min_rows=pol.min_rows, z=z
         )
         rows = _base_rows(meta, np.arange(len(idx)), "consistency")
         rows["cue"], rows["level"], rows["statistic"] = "R_s", None, r_s
+        _floor_interval(rows, check)
         rows["flagged"], rows["assessable"] = check.flagged, check.assessable
         frames.append(rows)
     if pol.achievement_floor is not None:
@@ -264,10 +277,12 @@ def floor_findings(config: Config, w: StoredWindows) -> pd.DataFrame:
             _with(stored, r_a=r_a, n_linked=n_linked),
             floor=pol.achievement_floor,
             min_linked=pol.achievement_min_linked,
+            z=z,
         )
         rows = _base_rows(meta, np.arange(len(idx)), "achievement")
         rows["n"] = n_linked.astype(int)
         rows["cue"], rows["level"], rows["statistic"] = "r_a", None, r_a
+        _floor_interval(rows, check)
         rows["flagged"], rows["assessable"] = check.flagged, check.assessable
         frames.append(rows)
     return pd.concat(frames, ignore_index=True) if frames else pd.DataFrame(columns=FINDING_COLUMNS)

@@ -92,10 +92,16 @@ def weight_drift(first: LensFits, second: LensFits) -> WeightDrift:
 
 @dataclass(frozen=True)
 class FloorCheck:
-    """Per-window floor verdict: ``flagged`` only where ``assessable`` (both (m,) bool)."""
+    """Per-window floor verdict: ``flagged`` only where ``assessable`` (both (m,) bool).
+
+    ``estimate`` is the figure compared with the floor (bias-adjusted for R_s) and
+    ``ci_low`` / ``ci_high`` its interval (NaN under the point-estimate rule)."""
 
     flagged: np.ndarray
     assessable: np.ndarray
+    estimate: np.ndarray | None = None
+    ci_low: np.ndarray | None = None
+    ci_high: np.ndarray | None = None
 
 
 def below_floor(value: np.ndarray, n: np.ndarray, *, floor: float, min_n: int) -> FloorCheck:
@@ -110,11 +116,52 @@ def below_floor(value: np.ndarray, n: np.ndarray, *, floor: float, min_n: int) -
         return FloorCheck(assessable & (value < floor), assessable)
 
 
-def consistency_floor(fits: LensFits, *, floor: float, min_rows: int) -> FloorCheck:
-    """Consistency R_s below ``floor`` on windows with at least ``min_rows`` decisions."""
-    return below_floor(fits.R_s, fits.n, floor=floor, min_n=min_rows)
+def consistency_floor(
+    fits: LensFits, *, floor: float, min_rows: int, z: float | None = None
+) -> FloorCheck:
+    """Consistency R_s below ``floor`` on windows with at least ``min_rows`` decisions.
+
+    With ``z`` (a control limit) the check is on the bias-adjusted R_s and its interval:
+    R^2 adjusted for the k_eff cues (Wherry's correction, 1 - (1 - R^2)(n - 1)/df), its
+    standard error from the large-sample variance of R^2 (Olkin & Finn 1995,
+    Psychological Bulletin 118, from memory: 4 R^2 (1 - R^2)^2 df^2 / ((n^2 - 1)(n + 3))),
+    the interval adj R^2 +- z SE mapped back to R.  The floor is crossed only when the
+    whole interval lies below it: a small window's R_s is biased upwards (a judge
+    answering at random with 8 cues shows R_s ~ 0.45 at n = 40) and noisy, so its point
+    estimate alone would flap.  Without ``z``: the point estimate, as before.
+    """
+    if z is None:
+        return below_floor(fits.R_s, fits.n, floor=floor, min_n=min_rows)
+    n = np.asarray(fits.n, dtype=float)
+    df = np.asarray(fits.df_resid, dtype=float)
+    r2 = np.asarray(fits.R_s, dtype=float) ** 2
+    with np.errstate(invalid="ignore", divide="ignore"):
+        adj = 1.0 - (1.0 - r2) * (n - 1.0) / df
+        se = np.sqrt(4.0 * r2 * (1.0 - r2) ** 2 * df**2 / ((n**2 - 1.0) * (n + 3.0)))
+        to_r = lambda v: np.sqrt(np.clip(v, 0.0, 1.0))  # noqa: E731
+        estimate, low, high = to_r(adj), to_r(adj - z * se), to_r(adj + z * se)
+    assessable = np.isfinite(estimate) & np.isfinite(high) & (n >= min_rows) & (df > 0)
+    with np.errstate(invalid="ignore"):
+        flagged = assessable & (high < floor)
+    return FloorCheck(flagged, assessable, estimate, low, high)
 
 
-def achievement_floor(fits: LensFits, *, floor: float, min_linked: int) -> FloorCheck:
-    """Achievement r_a below ``floor`` on windows with at least ``min_linked`` outcomes."""
-    return below_floor(fits.r_a, fits.n_linked, floor=floor, min_n=min_linked)
+def achievement_floor(
+    fits: LensFits, *, floor: float, min_linked: int, z: float | None = None
+) -> FloorCheck:
+    """Achievement r_a below ``floor`` on windows with at least ``min_linked`` outcomes.
+
+    With ``z``: the interval tanh(atanh(r_a) +- z / sqrt(n_linked - 3)) (Fisher 1921) must
+    lie wholly below the floor.  Without: the point estimate, as before."""
+    if z is None:
+        return below_floor(fits.r_a, fits.n_linked, floor=floor, min_n=min_linked)
+    r = np.asarray(fits.r_a, dtype=float)
+    n = np.asarray(fits.n_linked, dtype=float)
+    with np.errstate(invalid="ignore", divide="ignore"):
+        centre = np.arctanh(np.clip(r, -0.999999, 0.999999))
+        half = z / np.sqrt(n - 3.0)
+        low, high = np.tanh(centre - half), np.tanh(centre + half)
+    assessable = np.isfinite(r) & (n >= min_linked) & (n > 3)
+    with np.errstate(invalid="ignore"):
+        flagged = assessable & (high < floor)
+    return FloorCheck(flagged, assessable, r, low, high)
