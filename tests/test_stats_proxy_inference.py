@@ -110,3 +110,27 @@ def test_bh_qvalues_keep_precision_for_tiny_p_values():
         ref = multipletests(p[groups == g], method="fdr_bh")[1]
         np.testing.assert_allclose(q[groups == g], ref, rtol=1e-12, atol=0)
     assert (q >= p).all()
+
+
+def test_categorical_cue_size_does_not_depend_on_the_reference_level():
+    # The same rows coded against two different reference levels: the per-level weights
+    # change, the cue's size sd(sum_j b_j d_j) / sd(Ys) must not.  Source: its definition,
+    # computed here directly from statsmodels' fitted weights and the rows.
+    rng = np.random.default_rng(8)
+    n = 400
+    level = rng.integers(0, 3, size=n)
+    amount = rng.normal(size=n)
+    y = 1.0 + 0.7 * amount + np.array([0.0, 0.6, -0.3])[level] + rng.normal(size=n)
+    sizes = []
+    for reference in (0, 2):
+        others = [v for v in range(3) if v != reference]
+        dummies = np.column_stack([level == v for v in others]).astype(float)
+        z = np.column_stack([amount, dummies, y])
+        mom = moments_from_rows(z)
+        names = ["amount", *(f"region={v}" for v in others)]
+        dec = forbidden_cue_decomposition(mom, fit_lens(mom, None, names), "region")
+        ref = sm.OLS(y, sm.add_constant(np.column_stack([amount, dummies]))).fit()
+        carried = dummies @ ref.params[2:]
+        np.testing.assert_allclose(dec.cue_direct_size[0], carried.std() / y.std(), rtol=1e-9)
+        sizes.append(dec.cue_direct_size[0])
+    np.testing.assert_allclose(sizes[0], sizes[1], rtol=1e-9)

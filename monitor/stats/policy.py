@@ -36,8 +36,11 @@ class ForbiddenCueDecomposition:
     judgment units per unit of the column (per level-vs-reference for a dummy); the
     ``std_*`` figures are multiplied by sd(column) / sd(Ys), the scale of a standardised
     weight.  The joint tests are F tests with (f, df_resid) degrees of freedom; for a
-    single column they equal the squared t test.  A window that cannot be assessed has
-    NaN everywhere and a non-empty ``reason``.
+    single column they equal the squared t test.  ``cue_direct_size`` and
+    ``cue_indirect_size`` (m,) are one size per cue that does not depend on which level
+    is the reference: sd(sum_j b_j d_j) / sd(Ys), the spread of the judgment the cue's
+    columns carry (for one column, |standardised weight|).  A window that cannot be
+    assessed has NaN everywhere and a non-empty ``reason``.
     """
 
     cue: str
@@ -62,6 +65,8 @@ class ForbiddenCueDecomposition:
     std_direct: np.ndarray
     std_indirect: np.ndarray
     std_proxy_parts: np.ndarray
+    cue_direct_size: np.ndarray
+    cue_indirect_size: np.ndarray
     joint_F: np.ndarray
     joint_p: np.ndarray
     indirect_joint_F: np.ndarray
@@ -181,6 +186,10 @@ def forbidden_cue_decomposition(
         ind_half = t_half_width(ind_se, df_safe, 0.05)
         to_std = np.sqrt(var_f / np.where(var_y > 0, var_y, np.nan)[:, None])
 
+    with np.errstate(divide="ignore", invalid="ignore"):
+        y_scale = np.where(var_y > 0, var_y, np.nan)
+        cue_direct = np.sqrt(np.einsum("mf,mfg,mg->m", b_f, s_ff, b_f) / y_scale)
+        cue_indirect = np.sqrt(np.einsum("mf,mfg,mg->m", indirect, s_ff, indirect) / y_scale)
     v_ff = cov[:, f_idx][:, :, f_idx]
     joint_f, joint_p = _wald_f(b_f, v_ff, np.where(ok, df, 0.0))
     ind_joint_f, ind_joint_p = _wald_f(indirect, ind_cov, np.where(ok, df, 0.0))
@@ -212,6 +221,8 @@ def forbidden_cue_decomposition(
         std_direct=np.asarray(fits.std_weights)[:, f_idx] * col,
         std_indirect=indirect * to_std,
         std_proxy_parts=parts * to_std[:, :, None],
+        cue_direct_size=cue_direct,
+        cue_indirect_size=cue_indirect,
         joint_F=joint_f,
         joint_p=joint_p,
         indirect_joint_F=ind_joint_f,
@@ -254,9 +265,10 @@ def bh_qvalues(p_values: np.ndarray, groups: np.ndarray | None = None) -> np.nda
 class ForbiddenCueFlags:
     """Per-window verdict on one forbidden cue (all arrays (m,)).
 
-    ``size`` is the standardised direct weight of the column with the largest |value|
-    (``size_column``); ``p_value`` is its t test for a single column, the joint F test for
-    a categorical cue; ``q_value`` is BH-adjusted within the evaluation's family.  The
+    ``size`` is the standardised direct weight for a single column; for a categorical
+    cue the reference-invariant ``cue_direct_size`` of the decomposition, with the level
+    of the largest |weight| as detail (``size_column``).  ``p_value`` is the t test for a
+    single column, the joint F test for a categorical cue (one verdict per cue); ``q_value`` is BH-adjusted within the evaluation's family.  The
     ``proxy_*`` fields are the same for the indirect part, in a family of their own.
     ``assessable`` is False where the decomposition gave a reason; such windows are never
     flagged.
@@ -338,6 +350,10 @@ def flag_forbidden(
         assessable = d.reason == ""
         size, column = _largest(d.std_direct, d.columns)
         psize, _ = _largest(d.std_indirect, d.columns)
+        if len(d.columns) > 1:
+            # A categorical cue: one reference-invariant size for the verdict; the
+            # largest level stays the reported detail.
+            size, psize = d.cue_direct_size, d.cue_indirect_size
         if p_limit is None:
             flagged = is_flagged(assessable, size, q[c], tolerance=tolerance, level=fdr)
             pflagged = is_flagged(assessable, psize, pq[c], tolerance=tolerance, level=fdr)
