@@ -413,6 +413,17 @@ def test_fits_json_follows_the_contract(day_by_day):
     assert thin and all(d["R_e"] is None and "linked" in d["reason"] for d in thin)
 
 
+def test_fits_json_carries_the_lens_model_equation(day_by_day):
+    # Source: the lens model equation (Tucker 1964), exact in-sample with the judge model
+    # refitted on the linked rows: r_a = G R_e R_s + C sqrt(1 - R_e^2) sqrt(1 - R_s^2).
+    docs = [d for d in _fits_json(day_by_day["config"]) if d["r_a"] is not None]
+    assert docs
+    for d in docs:
+        re_, rs = d["R_e"], d["R_s_linked"]
+        rhs = d["G"] * re_ * rs + d["C"] * np.sqrt(1 - re_**2) * np.sqrt(1 - rs**2)
+        assert abs(d["r_a"] - rhs) < 1e-9, d
+
+
 def test_fits_json_filters_by_decision_maker_and_latest(day_by_day):
     docs = _fits_json(day_by_day["config"], "--decision-maker", "H002")
     assert docs and {d["decision_maker"] for d in docs} == {"H002"}

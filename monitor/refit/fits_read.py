@@ -22,6 +22,9 @@ FIT_FIELDS = [
     "n_decisions",
     "n_linked",
     *LENS_FIGURES,
+    # The judge model refitted on the linked rows: the R_s of the lens model equation,
+    # so a reader can check r_a = G R_e R_s_linked + C sqrt(1 - R_e^2) sqrt(1 - R_s_linked^2).
+    "R_s_linked",
 ]
 CUE_FIELDS = [
     "cue",
