@@ -72,7 +72,7 @@ def load_windows(
     placeholders = ", ".join("?" for _ in scopes)
     df = con.execute(
         "SELECT scope, decision_maker, team, window_start, window_end, n_decisions, n_linked, "
-        "R_s, r_a, cue_mean, comoment FROM fits "
+        "R_s, r_a, method, sigma, df_resid, weight_cov, cue_mean, comoment FROM fits "
         f"WHERE scope IN ({placeholders}) ORDER BY scope, decision_maker, window_end",
         list(scopes),
     ).df()
@@ -85,9 +85,56 @@ def load_windows(
     )
     moments = Moments(df["n_decisions"].to_numpy(dtype=float), mean, co)
     fits = fit_lens(moments, None, names, min_rows=config.policy.min_rows)
-    meta = df.drop(columns=["cue_mean", "comoment"]).reset_index(drop=True)
+    qr = np.flatnonzero(df["method"].to_numpy() == "qr") if m else np.zeros(0, int)
+    if len(qr):
+        fits = _stored_judge(con, df, qr, fits)
+    meta = df.drop(columns=["cue_mean", "comoment", "weight_cov"]).reset_index(drop=True)
     # Keep the stored lens figures (they use the linked rows, which the moments here lack).
     return StoredWindows(meta, moments, fits)
+
+
+def _stored_judge(con, df: pd.DataFrame, rows: np.ndarray, fits: LensFits) -> LensFits:
+    """The judge model of the windows the refit fitted from raw rows (QR, where the
+    moments were too poorly conditioned), as stored, in place of the moment fit."""
+    from dataclasses import replace
+
+    k = len(fits.names)
+    keys = df.iloc[rows][["scope", "decision_maker", "window_end"]].reset_index(drop=True)
+    con.register("_qr_keys", keys)
+    try:
+        cw = con.execute(
+            "SELECT c.scope, c.decision_maker, c.window_end, c.cue_index, c.weight, "
+            "c.std_error, c.t_value, c.p_value, c.ci_low, c.ci_high, c.std_weight, "
+            "c.estimable, c.reason FROM cue_weights c JOIN _qr_keys USING "
+            "(scope, decision_maker, window_end) ORDER BY 1, 2, 3, 4"
+        ).df()
+    finally:
+        con.unregister("_qr_keys")
+    position = {tuple(r): i for i, r in enumerate(keys.itertuples(index=False))}
+    at = np.array(
+        [position[t] for t in cw[["scope", "decision_maker", "window_end"]].itertuples(index=False)]
+    )
+    arrays = {}
+    for field, column in (
+        ("weights", "weight"),
+        ("std_errors", "std_error"),
+        ("t_values", "t_value"),
+        ("p_values", "p_value"),
+        ("ci_low", "ci_low"),
+        ("ci_high", "ci_high"),
+        ("std_weights", "std_weight"),
+    ):
+        values = np.array(getattr(fits, field), dtype=float, copy=True)
+        values[rows[at], cw["cue_index"].to_numpy()] = cw[column].to_numpy(dtype=float)
+        arrays[field] = values
+    estimable = np.array(fits.estimable, copy=True)
+    estimable[rows[at], cw["cue_index"].to_numpy()] = cw["estimable"].to_numpy(dtype=bool)
+    cov = np.array(fits.cov, dtype=float, copy=True)
+    for i, row in zip(rows, df.iloc[rows].itertuples(index=False), strict=True):
+        cov[i] = np.asarray(row.weight_cov, dtype=float).reshape(k, k)
+    sigma = np.array(fits.sigma, dtype=float, copy=True)
+    sigma[rows] = df["sigma"].to_numpy(dtype=float)[rows]
+    return replace(fits, estimable=estimable, cov=cov, sigma=sigma, **arrays)
 
 
 def _base_rows(meta: pd.DataFrame, index: np.ndarray, kind: str) -> pd.DataFrame:
