@@ -1,0 +1,106 @@
+"""The audit pack's forbidden_cues table against an outside reference: its q-values are
+Benjamini-Hochberg over the pack's family, recomputed here with statsmodels from the
+exported p-values, and its flags follow from them.
+
+The store is built by the real pipeline (init, ingest, refit, assess) from the
+committed Ostwyn sample (4 weeks of 2024Q4, 6 handlers) and exported as CSV twice: under
+the default alert rule and under ``alert_rule = "per_window_fdr"``, where a flag is
+BH's verdict (the q-values are the same under both rules).
+"""
+
+from __future__ import annotations
+
+import numpy as np
+import pandas as pd
+import pytest
+from conftest import REPO
+from scipy import stats
+from statsmodels.stats.multitest import multipletests
+
+from monitor.assess.alerts import assess
+from monitor.audit.pack import export
+from monitor.config import load_config
+from monitor.ingest.batches import ingest
+from monitor.refit.windows import refit
+from monitor.store.connection import Store
+
+SAMPLE = REPO / "synthetic_logs" / "sample"
+
+
+RULES = ("default", "per_window_fdr")
+
+
+@pytest.fixture(scope="module")
+def exported(tmp_path_factory) -> dict[str, tuple[object, pd.DataFrame]]:
+    """{rule: (config, exported forbidden_cues table)} from one store."""
+    root = tmp_path_factory.mktemp("audit_forbidden")
+    raw = (REPO / "config" / "ostwyn.toml").read_text(encoding="utf-8")
+    raw = raw.replace("../demo_run", str(root / "run"))
+    configs = {}
+    for rule in RULES:
+        text = (
+            raw
+            if rule == "default"
+            else raw.replace("[policy]", f'[policy]\nalert_rule = "{rule}"')
+        )
+        (root / f"{rule}.toml").write_text(text, encoding="utf-8")
+        configs[rule] = load_config(root / f"{rule}.toml")
+    config = configs["default"]
+    Store(config).init()
+    for kind in ("decisions", "outcomes"):
+        frames = [pd.read_csv(f, dtype=str) for f in sorted((SAMPLE / kind).glob("*.csv"))]
+        path = root / f"{kind}.csv"
+        pd.concat(frames, ignore_index=True).to_csv(path, index=False)
+        ingest(config, [str(path)], kind=kind)
+    refit(config)
+    assess(config)
+    packs = {}
+    for rule, cfg in configs.items():
+        export(cfg, quarter="2024Q4", out_dir=root / rule, formats=["csv"])
+        packs[rule] = (cfg, pd.read_csv(root / rule / "forbidden_cues.csv"))
+    return packs
+
+
+def _bool(col: pd.Series) -> np.ndarray:
+    return col.astype(str).str.lower().map({"true": True, "false": False}).to_numpy(bool)
+
+
+@pytest.mark.parametrize("rule", RULES)
+def test_forbidden_cue_q_values_are_benjamini_hochberg_over_the_pack_family(exported, rule):
+    """The family is every assessable decision-maker x forbidden cue level of the export
+    (DEVELOPERS.md, "Audit pack"); its q-values must be statsmodels' fdr_bh of the
+    exported p-values.  Under the per-window FDR rule a row is flagged exactly when it
+    is assessable, its |std_weight| reaches the policy tolerance and its q is at most
+    the policy's fdr."""
+    config, t = exported[rule]
+    assessable = _bool(t["assessable"])
+    p = t["p_value"].to_numpy(float)
+    assert assessable.sum() >= 12 and np.isfinite(p[assessable]).all()
+    # The exported p is the two-sided t test of the direct weight: check it first from
+    # the exported weight and standard error (df = n - k - 1; k design columns).
+    k = len(config.design_columns())
+    a = t[assessable]
+    p_ref = 2 * stats.t.sf(np.abs(a["direct"] / a["direct_se"]), a["n"] - k - 1)
+    np.testing.assert_allclose(a["p_value"], p_ref, rtol=1e-6, atol=1e-12)
+
+    # Source: statsmodels.stats.multitest.multipletests(method="fdr_bh").
+    q_ref = multipletests(p[assessable], method="fdr_bh")[1]
+    q = t["q_value"].to_numpy(float)
+    np.testing.assert_allclose(q[assessable], q_ref, rtol=1e-9, atol=1e-12)
+    assert np.isnan(q[~assessable]).all()
+    # BH moves these p-values: a q-value equal to the raw p would fail above.
+    assert np.abs(q_ref - p[assessable]).max() > 0.01
+
+    if rule != "per_window_fdr":
+        return
+    policy = config.policy
+    want = np.zeros(len(t), dtype=bool)
+    want[assessable] = (np.abs(a["std_weight"].to_numpy(float)) >= policy.tolerance) & (
+        q_ref <= policy.fdr
+    )
+    np.testing.assert_array_equal(_bool(t["flagged"]), want)
+    # Some row is material with p <= fdr but q > fdr: flagging on raw p would differ.
+    raw_flags = (np.abs(a["std_weight"].to_numpy(float)) >= policy.tolerance) & (
+        p[assessable] <= policy.fdr
+    )
+    assert (raw_flags & ~want[assessable]).any()
