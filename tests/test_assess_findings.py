@@ -17,6 +17,7 @@ from helpers.demo_store import build_demo_store
 from helpers.store_rows import design_frame, read_store
 from statsmodels.stats.multitest import multipletests
 
+from monitor.assess.alerts import assess
 from monitor.config import load_config
 from synthetic_logs.ostwyn import load_truth
 
@@ -119,37 +120,65 @@ def test_disparity_is_direct_plus_indirect_on_every_stored_row(demo_config):
 SEEDS = (1, 2, 3, 4)
 
 
-def _direct_flags(config_path: Path) -> pd.DataFrame:
-    """One row per (window end, handler, forbidden cue) with flagged."""
+def _direct_findings(config_path: Path) -> pd.DataFrame:
+    """The assessable forbidden_direct rows (one per window end, handler, cue level)."""
     f = read_store(
         config_path,
-        "SELECT window_end, decision_maker, cue, bool_or(flagged) AS flagged "
-        "FROM policy_findings WHERE check_kind = 'forbidden_direct' AND assessable "
-        "GROUP BY ALL",
+        "SELECT window_end, decision_maker, cue, level, p_value, std_weight, flagged "
+        "FROM policy_findings WHERE check_kind = 'forbidden_direct' AND assessable",
     )
     f["window_end"] = f["window_end"].dt.date
     return f
 
 
+def _assess_per_window_fdr(cfg_path: Path) -> Path:
+    """Re-assess the store under ``alert_rule = "per_window_fdr"`` (Benjamini-Hochberg
+    within each window end: the rule whose promise this test checks); returns that
+    configuration, written beside the demo one."""
+    text = cfg_path.read_text(encoding="utf-8")
+    fdr_path = cfg_path.with_name("per_window_fdr.toml")
+    fdr_path.write_text(
+        text.replace("[policy]", '[policy]\nalert_rule = "per_window_fdr"', 1), encoding="utf-8"
+    )
+    config = load_config(fdr_path)
+    assert config.policy.alert_rule == "per_window_fdr"
+    assess(config, force=True)
+    return fdr_path
+
+
 def test_false_alarms_over_stable_handlers_stay_within_the_fdr_level(tmp_path_factory):
-    """What is compared: the mean, over evaluation families (seed x window end), of the
-    false discovery proportion V / max(R, 1) among flagged (handler, forbidden cue)
-    series, with the truly non-null series being the planted direct handler's cue in
-    windows ending after its change.  Benjamini-Hochberg bounds the expectation of
-    that proportion by fdr * m0 / m <= fdr in every family (Benjamini & Hochberg 1995,
-    Theorem 1; Benjamini & Yekutieli 2001 for positively dependent tests); the size
-    threshold only removes flags.  Tolerance 0.05: overlapping windows make the 4 x ~38
-    families worth only about a dozen independent ones, and an FDP in [0, 1] with mean
-    fdr has a standard deviation near sqrt(fdr (1 - fdr)) ~ 0.22, so about 0.06 per
-    mean of a dozen (common practice: about one standard error)."""
-    fdps, null_series, null_series_flagged, false_alerts, proxy_false_alerts = [], 0, 0, [], []
+    """Benjamini-Hochberg against flagging on raw p, on the same innocent data.
+
+    Innocent: every (window end, handler, forbidden cue) except the planted direct
+    handler's cue in windows ending after its change.  Raw-p flagging is the same rule
+    with the q-value replaced by the p-value (assessable, |standardised weight| >=
+    tolerance, p <= fdr); it is computed here for the single-column forbidden cue
+    (claimant_gender), whose size and p are the stored std_weight and p_value.  BH's
+    q >= p, so its flags are a subset of raw-p's; they must be strictly fewer on the
+    innocent series (else BH did nothing - e.g. flags on raw p).
+
+    The false-flag share: the mean, over evaluation families (seed x window end), of
+    the false discovery proportion V / max(R, 1).  BH bounds its expectation by
+    fdr * m0 / m <= fdr (Benjamini & Hochberg 1995, Theorem 1; Benjamini & Yekutieli
+    2001 for positively dependent tests); the size threshold only removes flags.  Bound
+    from the simulation size: windows of 90 days overlap, so only the non-overlapping
+    ones are independent, n_eff = seeds x floor(days / length_days) = 4 x 3 = 12
+    families; an FDP in [0, 1] with mean mu <= fdr has variance <= mu (1 - mu) <=
+    fdr (1 - fdr), so the mean of 12 has a standard error <= sqrt(0.05 x 0.95 / 12)
+    ~ 0.063, and the bound is fdr + 2 standard errors (a one-sided ~2.5 % chance of a
+    false failure for a correct BH)."""
+    fdps, false_bh, false_raw, false_alerts = [], 0, 0, []
+    days = 270
     for seed in SEEDS:
         folder = tmp_path_factory.getbasetemp() / f"scenario_seed{seed}"
-        cfg_path = build_demo_store(folder, seed=seed, days=270, n_handlers=12)
+        cfg_path = _assess_per_window_fdr(
+            build_demo_store(folder, seed=seed, days=days, n_handlers=12)
+        )
+        config = load_config(cfg_path)
+        policy = config.policy
         truth = load_truth(folder / "scenario")
         direct = [c for c in truth.changes if c.kind == "forbidden_cue_direct"]
-        proxy = [c for c in truth.changes if c.kind == "proxy_cue"]
-        f = _direct_flags(cfg_path)
+        f = _direct_findings(cfg_path)
 
         def non_null(r, direct=direct):
             return any(
@@ -158,32 +187,37 @@ def test_false_alarms_over_stable_handlers_stay_within_the_fdr_level(tmp_path_fa
                 for c in direct
             )  # fmt: skip
 
-        f["null"] = ~f.apply(non_null, axis=1)
-        for _, g in f.groupby("window_end"):
+        series = f.groupby(["window_end", "decision_maker", "cue"], as_index=False).agg(
+            flagged=("flagged", "any"), levels=("level", "size"),
+            p=("p_value", "first"), size=("std_weight", "first"),
+        )  # fmt: skip
+        series["null"] = ~series.apply(non_null, axis=1)
+        for _, g in series.groupby("window_end"):
             r = int(g["flagged"].sum())
             v = int((g["flagged"] & g["null"]).sum())
             fdps.append(v / max(r, 1))
-        planted_direct = {(h, c.forbidden_cue) for c in direct for h in c.handler_ids}
-        keep = [
-            (h, c) not in planted_direct
-            for h, c in f[["decision_maker", "cue"]].itertuples(index=False)
+        single = series[(series["levels"] == 1) & series["null"]]
+        raw = (single["size"].abs() >= policy.tolerance) & (single["p"] <= policy.fdr)
+        assert not (single["flagged"] & ~raw).any(), "a BH flag that raw p would not give"
+        false_bh += int(single["flagged"].sum())
+        false_raw += int(raw.sum())
+        planted = {(h, c.forbidden_cue) for c in direct for h in c.handler_ids}
+        alerts = read_store(
+            cfg_path, "SELECT decision_maker, cue FROM alerts WHERE kind = 'forbidden_cue'"
+        )
+        false_alerts += [
+            (seed, a.decision_maker, a.cue)
+            for a in alerts.itertuples()
+            if (a.decision_maker, a.cue) not in planted
         ]
-        series = f[keep]
-        by_series = series.groupby(["decision_maker", "cue"])["flagged"].any()
-        null_series += len(by_series)
-        null_series_flagged += int(by_series.sum())
-        alerts = read_store(cfg_path, "SELECT kind, decision_maker, cue FROM alerts")
-        planted_proxy = {(h, c.forbidden_cue) for c in proxy for h in c.handler_ids}
-        for a in alerts.itertuples():
-            if a.kind == "forbidden_cue" and (a.decision_maker, a.cue) not in planted_direct:
-                false_alerts.append((seed, a.decision_maker, a.cue))
-            if a.kind == "proxy_use" and (a.decision_maker, a.cue) not in planted_proxy:
-                proxy_false_alerts.append((seed, a.decision_maker, a.cue))
-    fdr = load_config(cfg_path).policy.fdr
+    n_eff = len(SEEDS) * (days // config.windows.length_days)
+    bound = policy.fdr + 2 * np.sqrt(policy.fdr * (1 - policy.fdr) / n_eff)
     mean_fdp = float(np.mean(fdps))
     print(
         f"\nfalse alarms over {len(SEEDS)} seeds: mean FDP {mean_fdp:.4f} over {len(fdps)} "
-        f"families; null series with any flagged window {null_series_flagged}/{null_series}; "
-        f"false forbidden-cue alerts {false_alerts}; false proxy alerts {proxy_false_alerts}"
+        f"families (bound {bound:.3f}); false flags on innocent single-column series: "
+        f"BH {false_bh}, raw p {false_raw}; false forbidden-cue alerts {false_alerts}"
     )
-    assert mean_fdp <= fdr + 0.05
+    assert false_raw > 0, "the innocent data gave raw p nothing to over-flag: no contrast"
+    assert false_bh < false_raw
+    assert mean_fdp <= bound
