@@ -53,3 +53,15 @@ bench: $(STAMP)
 
 clean:
 	rm -rf $(VENV) demo_run .pytest_cache
+
+# Mutation testing of monitor/stats and monitor/assess with mutmut ([tool.mutmut] in
+# pyproject.toml).  Slow (hours on 2 cores), so neither `make test` nor CI runs it.
+# Results stay in mutants/: a second run tests only the mutants of functions that
+# changed.  MUTATE_JOBS mutants run at a time, at low priority; the summary (share
+# killed per package, the survivors) is printed at the end.
+.PHONY: mutate
+MUTATE_JOBS ?= 1
+mutate: $(STAMP)
+	$(BIN)/pip install --quiet -e '.[test,mutate]'
+	nice -n 19 $(BIN)/mutmut run --max-children $(MUTATE_JOBS)
+	$(BIN)/python -m benchmarks.mutation_score
