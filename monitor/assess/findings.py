@@ -22,7 +22,7 @@ from monitor.stats.limits import normal_half_width
 from monitor.stats.moments import Moments
 from monitor.stats.monitoring import drift_limit, forbidden_cue_limit
 from monitor.stats.policy import flag_forbidden, forbidden_cue_decomposition
-from monitor.stats.trends import achievement_floor, consistency_floor, weight_drift
+from monitor.stats.trends import achievement_floor, change_point, consistency_floor, weight_drift
 
 FINDING_COLUMNS = [
     "check_kind",
@@ -48,6 +48,9 @@ FINDING_COLUMNS = [
     "flagged",
     "assessable",
     "reason",
+    "change_day",
+    "change_low",
+    "change_high",
 ]
 PROXY_COLUMNS = ["decision_maker", "cue", "level", "window_end", "proxy_cue", "part", "std_part"]
 JOINT = "(all cues)"
@@ -276,6 +279,7 @@ def drift_findings(config: Config, w: StoredWindows) -> pd.DataFrame:
             )
         rows["assessable"] = ok
         rows["reason"] = [r or None for r in drift.reason]
+        _since_when(rows, w, cur, j, config.windows.length_days)
         frames.append(rows)
     joint = _base_rows(w.meta, cur, "drift")
     joint["cue"] = JOINT
@@ -294,6 +298,29 @@ def _floor_interval(rows: pd.DataFrame, check) -> None:
     if check.ci_low is not None:
         rows["std_weight"] = check.estimate
         rows["ci_low"], rows["ci_high"] = check.ci_low, check.ci_high
+
+
+def _since_when(rows: pd.DataFrame, w: StoredWindows, cur: np.ndarray, j: int, length: int) -> None:
+    """For each flagged drift row, when weight ``j`` most likely changed (change-point
+    estimate and interval over the series' windows up to that one)."""
+    out = {c: [pd.NaT] * len(rows) for c in ("change_day", "change_low", "change_high")}
+    flagged = np.flatnonzero(rows["flagged"].to_numpy(dtype=bool))
+    if len(flagged):
+        meta = w.meta
+        ends = pd.to_datetime(meta["window_end"]).to_numpy().astype("datetime64[D]")
+        day = ends.astype(np.int64)
+        series = (meta["scope"] + "\x1f" + meta["decision_maker"]).to_numpy()
+        for r in flagged:
+            i = cur[r]
+            same = np.flatnonzero((series == series[i]) & (day <= day[i]))
+            cp = change_point(
+                day[same], w.fits.weights[same, j], w.fits.std_errors[same, j], length
+            )
+            for col, value in zip(out, (cp.day, cp.low, cp.high), strict=True):
+                if np.isfinite(value):
+                    out[col][r] = pd.Timestamp(np.datetime64(int(value), "D"))
+    for col, values in out.items():
+        rows[col] = pd.to_datetime(pd.Series(values, dtype="datetime64[ns]")).dt.date.to_numpy()
 
 
 def floor_findings(config: Config, w: StoredWindows) -> pd.DataFrame:

@@ -165,3 +165,57 @@ def achievement_floor(
     with np.errstate(invalid="ignore"):
         flagged = assessable & (high < floor)
     return FloorCheck(flagged, assessable, r, low, high)
+
+
+@dataclass(frozen=True)
+class ChangePoint:
+    """When a weight most likely changed: day numbers (days since 1970-01-01) of the
+    estimate and of the ends of its 95 % interval; NaN when the series is too short."""
+
+    day: float
+    low: float
+    high: float
+
+
+def change_point(
+    ends: np.ndarray, weights: np.ndarray, std_errors: np.ndarray, length_days: int
+) -> ChangePoint:
+    """The most likely day of a step change in one weight, from its rolling windows.
+
+    ``ends``: (m,) window end days; ``weights``, ``std_errors``: (m,) that weight in each
+    window.  A step at day tau makes window i's expected weight b0 + (b1 - b0) f_i(tau),
+    f_i the share of the window's days after tau (a ramp over one window length, daily
+    volume taken as even).  Overlapping windows share rows, so their errors are
+    correlated: cov(e_i, e_j) = se_i se_j max(0, 1 - |t_i - t_j| / L), the moving-sum
+    covariance.  Each candidate day is fitted by generalised least squares; the estimate
+    minimises the residual sum of squares and the interval is every day whose RSS lies
+    within the chi-square(1) 95 % point of it (profile likelihood for a change point,
+    Hinkley 1970, Biometrika 57).  A weight missing in a window drops that window.
+    """
+    t = np.asarray(ends, dtype=float)
+    b = np.asarray(weights, dtype=float)
+    se = np.asarray(std_errors, dtype=float)
+    keep = np.isfinite(b) & np.isfinite(se) & (se > 0)
+    t, b, se = t[keep], b[keep], se[keep]
+    if len(t) < 4:
+        return ChangePoint(np.nan, np.nan, np.nan)
+    length = float(length_days)
+    overlap = np.clip(1.0 - np.abs(t[:, None] - t[None, :]) / length, 0.0, None)
+    cov = overlap * se[:, None] * se[None, :] + 1e-12 * np.diag(se**2)
+    chol = np.linalg.cholesky(cov)
+    white_b = np.linalg.solve(chol, b)
+    candidates = np.arange(t[0] - length, t[-1] + 1.0)
+    share = np.clip((t[None, :] - candidates[:, None]) / length, 0.0, 1.0)  # (c, m)
+    rss = np.full(len(candidates), np.inf)
+    ones = np.linalg.solve(chol, np.ones_like(t))
+    for c, f in enumerate(share):
+        x = np.column_stack([ones, np.linalg.solve(chol, f)])
+        if np.linalg.matrix_rank(x) < 2:
+            continue
+        coef, *_ = np.linalg.lstsq(x, white_b, rcond=None)
+        rss[c] = float(np.sum((white_b - x @ coef) ** 2))
+    if not np.isfinite(rss).any():
+        return ChangePoint(np.nan, np.nan, np.nan)
+    best = int(np.argmin(rss))
+    inside = candidates[rss <= rss[best] + 3.841458820694124]
+    return ChangePoint(float(candidates[best]), float(inside.min()), float(inside.max()))

@@ -235,6 +235,15 @@ MIGRATIONS: list[tuple[int, str, list[str]]] = [
             )""",
         ],
     ),
+    (
+        4,
+        "policy findings: when a drifting weight most likely changed",
+        [
+            "ALTER TABLE policy_findings ADD COLUMN change_day DATE",
+            "ALTER TABLE policy_findings ADD COLUMN change_low DATE",
+            "ALTER TABLE policy_findings ADD COLUMN change_high DATE",
+        ],
+    ),
 ]
 
 
