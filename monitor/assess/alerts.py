@@ -174,6 +174,12 @@ def _evidence(row: pd.Series) -> dict:
         )
     if kind == "drift":
         ev.update(change=_num(row.get("direct")), z=_num(row.get("statistic")))
+        # Since when: the change-point estimate and its interval (None where unknown).
+        ev["since"] = {
+            "estimate": _iso(row.get("change_day")),
+            "low": _iso(row.get("change_low")),
+            "high": _iso(row.get("change_high")),
+        }
     if kind in ("consistency", "achievement"):
         ev.update(
             figure="R_s" if kind == "consistency" else "r_a", value=_num(row.get("statistic"))
