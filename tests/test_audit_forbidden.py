@@ -104,3 +104,39 @@ def test_forbidden_cue_q_values_are_benjamini_hochberg_over_the_pack_family(expo
         p[assessable] <= policy.fdr
     )
     assert (raw_flags & ~want[assessable]).any()
+
+
+def test_intervals_stand_on_the_scale_of_the_figure_beside_them(exported):
+    # ci_low / ci_high bracket the standardised weight; direct_ci_* the raw weight; the
+    # ratio of the two scales is the column's sd(x) / sd(Ys) = std_weight / direct.
+    _, t = exported["default"]
+    a = t[_bool(t["assessable"])]
+    scale = a["std_weight"] / a["direct"]
+    np.testing.assert_allclose(a["ci_low"], a["direct_ci_low"] * scale, rtol=1e-9)
+    np.testing.assert_allclose(a["ci_high"], a["direct_ci_high"] * scale, rtol=1e-9)
+    assert ((a["ci_low"] <= a["std_weight"]) & (a["std_weight"] <= a["ci_high"])).all()
+    assert (
+        (a["indirect_ci_low"] <= a["std_indirect"]) & (a["std_indirect"] <= a["indirect_ci_high"])
+    ).all()
+
+
+@pytest.mark.parametrize("rule", RULES)
+def test_proxy_verdict_follows_the_same_rule_in_its_own_family(exported, rule):
+    # Source: statsmodels multipletests (fdr_bh) over the assessable rows' indirect p.
+    config, t = exported[rule]
+    ok = _bool(t["assessable"])
+    q_ref = multipletests(t["indirect_p"].to_numpy(float)[ok], method="fdr_bh")[1]
+    np.testing.assert_allclose(t["indirect_q_value"].to_numpy(float)[ok], q_ref, rtol=1e-9)
+    policy = config.policy
+    size = np.abs(t["std_indirect"].to_numpy(float)[ok]) >= (
+        policy.proxy_tolerance or policy.tolerance
+    )
+    if rule == "per_window_fdr":
+        want = size & (q_ref <= policy.fdr)
+    else:
+        from monitor.stats.monitoring import forbidden_cue_limit
+
+        limit = forbidden_cue_limit(policy, config.windows)
+        want = size & (t["indirect_p"].to_numpy(float)[ok] <= limit.p_limit)
+    np.testing.assert_array_equal(_bool(t["proxy_flagged"])[ok], want)
+    assert not _bool(t["proxy_flagged"])[~ok].any()

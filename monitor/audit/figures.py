@@ -30,10 +30,14 @@ CUE_COLUMNS = (
     "scope:str decision_maker:str cue:str weight std_error ci_low ci_high std_weight "
     "utilization_r validity_r p_value estimable:bool n_decisions:int t_value env_weight reason:str"
 )
+# Intervals stand on the scale of the figure beside them: ci_low / ci_high around the
+# standardised weight, direct_ci_low / direct_ci_high around the raw direct weight,
+# indirect_ci_low / indirect_ci_high around the standardised indirect part.
 FORBIDDEN_COLUMNS = (
     "decision_maker:str cue:str disparity direct indirect std_weight ci_low ci_high q_value "
-    "flagged:bool n:int direct_se p_value std_disparity std_indirect indirect_se indirect_p "
-    "assessable:bool reason:str"
+    "flagged:bool n:int direct_se direct_ci_low direct_ci_high p_value std_disparity "
+    "std_indirect indirect_ci_low indirect_ci_high indirect_se indirect_p indirect_q_value "
+    "proxy_flagged:bool joint_p_value assessable:bool reason:str"
 )
 LOGIT_COLUMNS = (
     "scope:str decision_maker:str cue:str coef std_error z_value p_value odds_ratio or_ci_low "
@@ -139,14 +143,21 @@ def _forbidden_tables(config: Config, fits, moms, keys: list[str]) -> tuple[Tabl
         "direct": "direct",
         "indirect": "indirect",
         "std_weight": "std_direct",
-        "ci_low": "direct_ci_low",
-        "ci_high": "direct_ci_high",
+        "direct_ci_low": "direct_ci_low",
+        "direct_ci_high": "direct_ci_high",
         "direct_se": "direct_se",
         "p_value": "direct_p",
         "std_disparity": "std_disparity",
         "std_indirect": "std_indirect",
         "indirect_se": "indirect_se",
         "indirect_p": "indirect_p",
+    }
+    # Raw figures -> the standardised scale of std_weight (sd(column) / sd(Ys)).
+    scaled = {
+        "ci_low": "direct_ci_low",
+        "ci_high": "direct_ci_high",
+        "indirect_ci_low": "indirect_ci_low",
+        "indirect_ci_high": "indirect_ci_high",
     }
     for cue in policy.forbidden:
         d = forbidden_cue_decomposition(moms, fits, cue)
@@ -157,6 +168,9 @@ def _forbidden_tables(config: Config, fits, moms, keys: list[str]) -> tuple[Tabl
                 cols["cue"].append(col)
                 for name, field in fields.items():
                     cols[name].append(getattr(d, field)[i, j])
+                for name, field in scaled.items():
+                    cols[name].append(getattr(d, field)[i, j] * d.std_scale[i, j])
+                cols["joint_p_value"].append(d.joint_p[i] if len(d.columns) > 1 else np.nan)
                 cols["n"].append(d.n[i])
                 cols["assessable"].append(ok)
                 cols["reason"].append(d.reason[i] or None)
@@ -178,6 +192,18 @@ def _forbidden_tables(config: Config, fits, moms, keys: list[str]) -> tuple[Tabl
         evidence, level = np.array(cols["p_value"], dtype=float), limit.p_limit
     cols["flagged"] = is_flagged(ok, size, evidence, tolerance=policy.tolerance, level=level)
     cols["q_value"] = q
+    # The proxy verdict, by the same rule in a family of its own (as assess does).
+    indirect_p = np.where(ok, np.array(cols["indirect_p"], dtype=float), np.nan)
+    indirect_q = bh_qvalues(indirect_p)
+    proxy_evidence = indirect_q if limit is None else indirect_p
+    cols["proxy_flagged"] = is_flagged(
+        ok,
+        np.array(cols["std_indirect"], dtype=float),
+        proxy_evidence,
+        tolerance=policy.proxy_tolerance or policy.tolerance,
+        level=level,
+    )
+    cols["indirect_q_value"] = indirect_q
     return (
         table_from_columns(
             "forbidden_cues",

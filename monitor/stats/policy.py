@@ -40,7 +40,8 @@ class ForbiddenCueDecomposition:
     ``cue_indirect_size`` (m,) are one size per cue that does not depend on which level
     is the reference: sd(sum_j b_j d_j) / sd(Ys), the spread of the judgment the cue's
     columns carry (for one column, |standardised weight|).  A window that cannot be
-    assessed has NaN everywhere and a non-empty ``reason``.
+    assessed has NaN everywhere and a non-empty ``reason``.  ``std_scale`` (m, f) is the
+    factor sd(column) / sd(Ys) that takes a raw figure to the standardised scale.
     """
 
     cue: str
@@ -67,6 +68,7 @@ class ForbiddenCueDecomposition:
     std_proxy_parts: np.ndarray
     cue_direct_size: np.ndarray
     cue_indirect_size: np.ndarray
+    std_scale: np.ndarray
     joint_F: np.ndarray
     joint_p: np.ndarray
     indirect_joint_F: np.ndarray
@@ -223,6 +225,7 @@ def forbidden_cue_decomposition(
         std_proxy_parts=parts * to_std[:, :, None],
         cue_direct_size=cue_direct,
         cue_indirect_size=cue_indirect,
+        std_scale=to_std,
         joint_F=joint_f,
         joint_p=joint_p,
         indirect_joint_F=ind_joint_f,
