@@ -135,6 +135,8 @@ def test_pages_keep_working_while_the_nightly_job_writes(served, browser):
         for f in (root / "later" / kind).glob("*.csv"):
             shutil.copy(f, root / "run" / "landing" / kind / f.name)
     before = sql(cfg, "SELECT count(*) AS n FROM decisions")["n"][0]
+    accepted_sql = "SELECT sum(rows_accepted) AS n FROM batches"
+    accepted_before = int(sql(cfg, accepted_sql)["n"][0])
     nightly = cli(cfg, "nightly", stdout=subprocess.PIPE, stderr=subprocess.PIPE)
     loads = during = 0
     while nightly.poll() is None or loads < len(PAGES):
@@ -148,6 +150,13 @@ def test_pages_keep_working_while_the_nightly_job_writes(served, browser):
     assert sql(cfg, "SELECT count(*) AS n FROM decisions")["n"][0] > before
     ok_runs = sql(cfg, "SELECT count(*) AS n FROM runs WHERE command = 'nightly' AND status = 'ok'")
     assert ok_runs["n"][0] == 2
-    # After the write the dashboard shows the new data (its cache key is the store mtime).
+    # After the write the dashboard shows the new data (its cache key is the store mtime):
+    # the health page's "Rows accepted" is the store's total of accepted rows (plain SQL
+    # here), a figure only the nightly job's new batches can produce.
+    accepted_after = int(sql(cfg, accepted_sql)["n"][0])
+    assert accepted_after > accepted_before
     page = open_page(browser, url, "health", "Quarantine by reason")
     page.screenshot(path=str(ARTIFACTS / "dashboard-health-after-nightly.png"), full_page=True)
+    metric = page.locator('[data-testid="stMetric"]').filter(has_text="Rows accepted")
+    shown = metric.inner_text()
+    assert f"{accepted_after:,}" in shown and f"{accepted_before:,}" not in shown, shown

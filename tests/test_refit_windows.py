@@ -395,7 +395,9 @@ def test_fits_json_follows_the_contract(day_by_day):
         assert FIT_JSON_KEYS <= set(d)
         assert d["scope"] in ("decision_maker", "team", "all")
         assert [c["cue"] for c in d["cues"]] == design
-        date.fromisoformat(d["window_start"]), date.fromisoformat(d["window_end"])
+        # ISO dates, the window spanning windows.length_days days (inclusive ends).
+        start, end = date.fromisoformat(d["window_start"]), date.fromisoformat(d["window_end"])
+        assert (end - start).days == config.windows.length_days - 1, d
         for c in d["cues"]:
             assert CUE_JSON_KEYS <= set(c)
             assert isinstance(c["estimable"], bool)
