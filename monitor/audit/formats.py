@@ -5,11 +5,14 @@ rounded to ``SIGNIFICANT`` significant digits before it is stored in a table, so
 exports of the same rows are byte-identical in CSV and Parquet even if a summation
 order changed the last binary digits.  Missing values are ``None`` everywhere (empty in
 CSV, null in Parquet, an empty cell in XLSX).
+
+Text cells of the spreadsheet formats (CSV and XLSX) go through ``neutralise``: a value a
+spreadsheet could take for a formula gets a leading apostrophe.  Parquet and HTML keep
+the raw text.
 """
 
 from __future__ import annotations
 
-import csv
 import math
 from collections.abc import Iterable, Sequence
 from dataclasses import dataclass
@@ -20,6 +23,13 @@ from pathlib import Path
 # two or three, so rounding here removes it without losing anything an auditor can use.
 SIGNIFICANT = 12
 KINDS = ("str", "int", "float", "bool", "date")
+
+# First characters that make a spreadsheet read a cell as a formula (OWASP, "CSV
+# Injection": =, +, -, @, tab, carriage return), plus the apostrophe itself, so that
+# the rule stays reversible: every text cell that starts with "'" was prefixed, and
+# dropping exactly one leading "'" gives the true value back (``restore``).
+FORMULA_TRIGGERS = ("=", "+", "-", "@", "\t", "\r", "'")
+ESCAPE = "'"
 
 
 def clean_float(value: object) -> float | None:
@@ -87,6 +97,27 @@ def make_table(
     return Table(name, title, tuple((c, k) for c, k in columns), tuple(out))
 
 
+# --- spreadsheet formula injection --------------------------------------------------------
+
+
+def neutralise(text: str) -> str:
+    """``text`` safe for a spreadsheet cell: prefixed with ``'`` when it starts with one of
+    FORMULA_TRIGGERS, unchanged otherwise.  Only text cells go through this: numbers,
+    booleans and dates (a negative weight included) are written as themselves."""
+    return ESCAPE + text if text.startswith(FORMULA_TRIGGERS) else text
+
+
+def restore(cell: str) -> str:
+    """The true value of a text cell read back from a CSV or XLSX export (the inverse of
+    ``neutralise``): one leading ``'`` removed, if there is one."""
+    return cell[len(ESCAPE) :] if cell.startswith(ESCAPE) else cell
+
+
+def _cell_text(value: object, kind: str) -> str:
+    text = csv_text(value)
+    return neutralise(text) if kind == "str" and value is not None else text
+
+
 # --- CSV ------------------------------------------------------------------------------
 
 
@@ -104,13 +135,26 @@ def csv_text(value: object) -> str:
     return str(value)
 
 
+def csv_field(text: str) -> str:
+    """One CSV field (RFC 4180): quoted, with quotes doubled, when it holds a comma, a
+    quote, a line feed or a carriage return.  Python's csv writer leaves a bare carriage
+    return unquoted when the line end is '\\n', which let a value start a new row."""
+    if any(ch in text for ch in ',"\r\n'):
+        return '"' + text.replace('"', '""') + '"'
+    return text
+
+
 def write_csv(table: Table, path: Path) -> Path:
-    """UTF-8, comma separated, '\\n' line ends, header row first."""
+    """UTF-8, comma separated, '\\n' line ends, header row first; text cells neutralised
+    against formula injection (``neutralise``)."""
+    kinds = [k for _, k in table.columns]
+    lines = [[neutralise(n) for n in table.names]]
+    lines += [[_cell_text(v, k) for v, k in zip(row, kinds, strict=True)] for row in table.rows]
     with open(path, "w", encoding="utf-8", newline="") as fh:
-        w = csv.writer(fh, lineterminator="\n")
-        w.writerow(table.names)
-        for row in table.rows:
-            w.writerow([csv_text(v) for v in row])
+        for fields in lines:
+            # A row of one empty field is written as "" so that it is not an empty line.
+            text = '""' if fields == [""] else ",".join(csv_field(f) for f in fields)
+            fh.write(text + "\n")
     return path
 
 
@@ -151,6 +195,18 @@ def _sheet_name(name: str, used: set[str]) -> str:
     return out
 
 
+def _put(sheet, row: int, column: int, value: object, kind: str):
+    """Write one cell: text neutralised and typed as a string (openpyxl would otherwise
+    store a value starting with "=" as a formula); other kinds as they are."""
+    cell = sheet.cell(row=row, column=column)
+    if kind == "str" and value is not None:
+        cell.value = neutralise(str(value))
+        cell.data_type = "s"
+    else:
+        cell.value = value
+    return cell
+
+
 def write_workbook(
     tables: Sequence[Table], path: Path, cover: Sequence[tuple[str, str]], created: datetime
 ) -> Path:
@@ -158,6 +214,7 @@ def write_workbook(
     bold filled header, frozen header row, auto-filter, number formats and widths.
 
     Cells keep full (rounded) values; the number format only changes what is shown.
+    Text cells are neutralised (``neutralise``) and stored as strings, never formulas.
     """
     from openpyxl import Workbook
     from openpyxl.styles import Alignment, Font, PatternFill
@@ -170,8 +227,8 @@ def write_workbook(
     ws.title = "cover"
     bold = Font(bold=True)
     for i, (label, text) in enumerate(cover, start=1):
-        ws.cell(row=i, column=1, value=label).font = bold
-        cell = ws.cell(row=i, column=2, value=text)
+        _put(ws, i, 1, label, "str").font = bold
+        cell = _put(ws, i, 2, text, "str")
         cell.alignment = Alignment(wrap_text=True, vertical="top")
     ws.column_dimensions["A"].width = 24
     ws.column_dimensions["B"].width = 110
@@ -180,11 +237,11 @@ def write_workbook(
     for table in tables:
         sh = wb.create_sheet(_sheet_name(table.name, used))
         for j, name in enumerate(table.names, start=1):
-            c = sh.cell(row=1, column=j, value=name)
+            c = _put(sh, 1, j, name, "str")
             c.font, c.fill = bold, fill
         for i, row in enumerate(table.rows, start=2):
-            for j, v in enumerate(row, start=1):
-                sh.cell(row=i, column=j, value=v)
+            for j, (v, (_, kind)) in enumerate(zip(row, table.columns, strict=True), start=1):
+                _put(sh, i, j, v, kind)
         for j, (name, kind) in enumerate(table.columns, start=1):
             letter = get_column_letter(j)
             # p- and q-values span many decades: scientific, so 1e-9 does not show as 0.

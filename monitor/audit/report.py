@@ -7,11 +7,14 @@ SVG, no script and no external resource, so it opens offline and prints as is.
 from __future__ import annotations
 
 import html
+import json
 import math
+import textwrap
 from collections.abc import Sequence
+from importlib import resources
 from pathlib import Path
 
-from monitor.audit.formats import Table, csv_text
+from monitor.audit.formats import ESCAPE, FORMULA_TRIGGERS, Table, csv_text
 from monitor.cautions import CAUTION, caution_lines
 from monitor.config import Config
 
@@ -71,6 +74,7 @@ def methodology_text(config: Config, quarter: str, as_of: str, *, compare: bool 
         "- alerts: alerts active at any time in the quarter (by the data window or by the",
         "  clock), in the state their recorded history gives them at the as-of time.",
         "- Numbers are rounded to 12 significant digits in every file.",
+        *_formula_note(),
     ]
     if compare:
         parts += [
@@ -79,6 +83,7 @@ def methodology_text(config: Config, quarter: str, as_of: str, *, compare: bool 
             "  outcomes corrected (a later version with a different value), decisions",
             "  ingested late.",
         ]
+    parts += ["", *operating_characteristics_lines(config)]
     parts += [
         "",
         "LIMITS AND CAUTIONS",
@@ -95,6 +100,113 @@ def methodology_text(config: Config, quarter: str, as_of: str, *, compare: bool 
         "  explicitly (see manifest.json, include_rows).",
     ]
     return "\n".join(parts) + "\n"
+
+
+def _formula_note() -> list[str]:
+    """How a reader gets the true text back from a neutralised spreadsheet cell."""
+    names = {"\t": "a tab", "\r": "a carriage return", ESCAPE: f"{ESCAPE} (an apostrophe)"}
+    starts = [names.get(c, c) for c in FORMULA_TRIGGERS]
+    text = (
+        "Spreadsheet safety: in the CSV and XLSX files a text cell that starts with "
+        f"{', '.join(starts[:-1])} or {starts[-1]} is written with one extra leading {ESCAPE}, "
+        "so that no spreadsheet runs it as a formula; the true value is the cell without "
+        f"that first {ESCAPE}. Numbers, dates and true/false cells are never changed; the "
+        "Parquet files and the HTML report hold the text as it is."
+    )
+    return textwrap.wrap(text, 84, initial_indent="- ", subsequent_indent="  ")
+
+
+# The simulated operating characteristics of the alert rules, written by
+# `python -m benchmarks.bench_alerts` (package data beside this module).
+OPERATING_CHARACTERISTICS = "operating_characteristics.json"
+
+
+def _rate(row: dict) -> str:
+    if row["per_100"] is None:
+        return "-"
+    return f"{row['per_100']:.2f} (<= {row['upper_95']:.2f})"
+
+
+def _delay(row: dict) -> str:
+    med, p90, never = row["median_weeks"], row["p90_weeks"], row["never_share"]
+    if never is None:
+        return "-"
+    fmt = lambda v: ">52" if v is None else f"{v:.0f}"  # noqa: E731
+    return f"{fmt(med)} / {fmt(p90)} / {100 * never:.0f}%"
+
+
+def operating_characteristics_lines(config: Config, data: dict | None = None) -> list[str]:
+    """The methodology paragraph on the alerts' simulated false-alarm rates and
+    detection delays, for the configured ``policy.alert_rule``; ``data`` defaults to the
+    file the benchmark wrote."""
+    head = ["HOW OFTEN THE ALERTS ERR (simulated operating characteristics)"]
+    if data is None:
+        try:
+            text = (resources.files("monitor.audit") / OPERATING_CHARACTERISTICS).read_text()
+            data = json.loads(text)
+        except (OSError, ValueError):
+            return [*head, "- Not available in this installation."]
+    rule = config.policy.alert_rule
+    figures = data["rules"][rule]
+    run, settings = data["run"], data["settings"]
+    if rule == "calibrated":
+        scheme = [
+            "Alert rule: calibrated - each weekly look compares a window's p-value with a",
+            "control limit set by simulation so that an innocent series opens at most",
+            f"{config.policy.false_alerts_per_100_years:g} direct or proxy and "
+            f"{config.policy.drift_false_alerts_per_100_years:g} drift alerts per 100 years.",
+        ]
+    else:
+        scheme = [
+            "Alert rule: per_window_fdr - the previous scheme (Benjamini-Hochberg within one",
+            "window end, drift at p < drift_alpha; overlapping weekly windows treated as",
+            "independent tests). The figures below are that old scheme's, kept for comparison;",
+            "it does not control false alerts over time.",
+        ]
+    ours = {f"policy.{k}": v for k, v in config.policy.model_dump().items()}
+    ours.update({f"windows.{k}": v for k, v in config.windows.model_dump().items()})
+    differ = sorted(k for k, v in settings.items() if k in ours and ours[k] != v)
+    lines = [
+        *head,
+        *scheme,
+        "The figures are SIMULATED, not measured on this organisation's decisions: a",
+        f"simulation with planted truth ({run['command']}, {run['date']}) ran the same",
+        "statistics and alert rules as this pack on synthetic decision-makers. Its",
+        f"assumptions: {data['world']['cues']}; {data['world']['judges']}; "
+        f"{data['world']['organisation']} per organisation.",
+        "Real decision-makers with other volumes, cues or consistency will differ.",
+    ]
+    if differ:
+        lines.append(
+            "This configuration differs from the simulated settings in "
+            + ", ".join(differ)
+            + ": the figures are indicative only."
+        )
+    kinds = ("forbidden_cue", "proxy_use", "drift")
+    lines += [
+        "False alerts per 100 innocent person-cue-years (exact 95% upper bound):",
+        f"  {'decisions/90 days':<18}" + "".join(f"{k:>20}" for k in kinds),
+    ]
+    rates = {(r["volume"], r["kind"]): r for r in figures["false_alerts"]}
+    for volume in data["volumes"]:
+        lines.append(f"  {volume:<18}" + "".join(f"{_rate(rates[volume, k]):>20}" for k in kinds))
+    lines += [
+        "Weeks from a change to the first open alert (median / 90th percentile / share",
+        "not detected within 52 weeks), by decisions per 90 days:",
+        f"  {'planted change':<16}" + "".join(f"{v:>20}" for v in data["volumes"]),
+    ]
+    delays = {(r["volume"], r["planted"]): r for r in figures["detection"]}
+    for planted in data["world"]["planted"]:
+        lines.append(
+            f"  {planted:<16}"
+            + "".join(f"{_delay(delays[v, planted]):>20}" for v in data["volumes"])
+        )
+    lines += [
+        "(direct/proxy sizes: standardised weight / indirect part of the forbidden cue;",
+        "drift: standardised change of a permitted cue's weight.) Faster detection costs",
+        "more false accusations; benchmarks/README.md shows the trade-off.",
+    ]
+    return lines
 
 
 # --- charts ------------------------------------------------------------------------------------
