@@ -49,6 +49,9 @@ class Context:
     def config(self) -> Config:
         if self._config is None:
             self._config = load_config(self.config_path)
+            from monitor.store.permissions import set_process_umask
+
+            set_process_umask(self._config)  # owner-only files unless configured otherwise
         return self._config
 
 

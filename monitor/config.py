@@ -68,6 +68,32 @@ class StoreConfig(_Strict):
     path: Path = Path("data/cuewatch.duckdb")
     lock_timeout_s: float = Field(30.0, ge=0)
     read_retry_s: float = Field(5.0, ge=0)
+    # Permission bits of every file cuewatch creates (store, WAL, lock, alert file,
+    # exports); folders get the same plus search (x) where read is allowed.
+    file_mode: int = 0o600
+
+    @field_validator("file_mode", mode="before")
+    @classmethod
+    def _octal_mode(cls, value: object) -> int:
+        return parse_file_mode(value)
+
+
+def parse_file_mode(value: object) -> int:
+    """``store.file_mode`` as permission bits: an integer (TOML ``0o640``) or an octal
+    string ("0640", "0o640", "640"); owner read and write required, no execute bits."""
+    mode = value
+    if isinstance(value, str):
+        text = value.strip().lower().removeprefix("0o")
+        if not re.fullmatch(r"0?[0-7]{3}", text):
+            raise ValueError(f"file_mode must be octal permissions such as 0o600, not {value!r}")
+        mode = int(text, 8)
+    if isinstance(mode, bool) or not isinstance(mode, int) or not 0 <= mode <= 0o777:
+        raise ValueError(f"file_mode must be octal permissions such as 0o600, not {value!r}")
+    if mode & 0o600 != 0o600 or mode & 0o111:
+        raise ValueError(
+            f"file_mode {mode:#o} must give the owner read and write and nobody execute"
+        )
+    return mode
 
 
 class DecisionsConfig(_Strict):
@@ -223,6 +249,19 @@ class ScheduleConfig(_Strict):
         return value
 
 
+class DashboardConfig(_Strict):
+    # The name of an environment variable holding a shared secret that the dashboard's
+    # acknowledge form then asks for (unset: no secret is asked).
+    ack_secret_env: str | None = None
+
+    @field_validator("ack_secret_env")
+    @classmethod
+    def _env_name(cls, value: str | None) -> str | None:
+        if value is not None and not re.fullmatch(r"[A-Za-z_][A-Za-z0-9_]*", value):
+            raise ValueError(f"ack_secret_env must be an environment variable name, not {value!r}")
+        return value
+
+
 class IngestConfig(_Strict):
     delimiter: str = ","
     encoding: str = "utf-8"
@@ -249,6 +288,7 @@ class Config(_Strict):
     alerts: AlertsConfig = Field(default_factory=AlertsConfig)
     schedule: ScheduleConfig = Field(default_factory=ScheduleConfig)
     ingest: IngestConfig = Field(default_factory=IngestConfig)
+    dashboard: DashboardConfig = Field(default_factory=DashboardConfig)
 
     # Not part of the file: where it came from and its content hash.
     source: Annotated[Path | None, Field(exclude=True)] = None

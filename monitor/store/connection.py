@@ -25,6 +25,7 @@ import duckdb
 
 from monitor.config import Config
 from monitor.errors import UserError
+from monitor.store.permissions import apply_mode, owner_only
 from monitor.store.rules import sql_literal, utc_now
 from monitor.store.schema import (
     StoreMismatch,
@@ -68,14 +69,19 @@ class Store:
     def writer(self, timeout_s: float | None = None) -> Iterator[duckdb.DuckDBPyConnection]:
         """The single read-write connection, under the store's lock file."""
         timeout = self.config.store.lock_timeout_s if timeout_s is None else timeout_s
-        self.path.parent.mkdir(parents=True, exist_ok=True)
-        with _file_lock(self.lock_path, timeout):
-            con = _connect_with_retry(str(self.path), read_only=False, timeout_s=max(timeout, 5))
-            try:
-                self._configure(con)
-                yield con
-            finally:
-                con.close()
+        # DuckDB creates the store, its WAL and spill files itself: the umask gives them
+        # (and the lock and the store's folder) the configured mode.
+        with owner_only(self.config):
+            self.path.parent.mkdir(parents=True, exist_ok=True)
+            with _file_lock(self.lock_path, timeout):
+                con = _connect_with_retry(
+                    str(self.path), read_only=False, timeout_s=max(timeout, 5)
+                )
+                try:
+                    self._configure(con)
+                    yield con
+                finally:
+                    con.close()
 
     @contextlib.contextmanager
     def reader(self, retry_s: float | None = None) -> Iterator[duckdb.DuckDBPyConnection]:
@@ -100,12 +106,14 @@ class Store:
     # --- schema -----------------------------------------------------------------------
 
     def init(self) -> dict:
-        """Create or migrate the store; a no-op when it is up to date.
+        """Create or migrate the store; a no-op when it is up to date.  The store's files
+        (store, WAL, lock) get ``store.file_mode``, also when they existed before.
 
         Returns {"created": bool, "applied": [versions], "cue_columns_added": [...],
         "schema_version": int}.
         """
         created = not self.path.exists()
+        apply_mode(self.config, *self.own_files())
         with self.writer() as con:
             con.execute("BEGIN")
             try:
@@ -123,6 +131,11 @@ class Store:
             "schema_version": version,
             "path": str(self.path),
         }
+
+    def own_files(self) -> list[Path]:
+        """The files the store keeps beside its data: the store itself, DuckDB's WAL and
+        the writers' lock file (some exist only at times)."""
+        return [self.path, self.path.with_name(self.path.name + ".wal"), self.lock_path]
 
     def ensure_ready(self, con: duckdb.DuckDBPyConnection) -> None:
         """Raise StoreMismatch unless the store is initialised and has every cue column."""
@@ -163,7 +176,7 @@ def set_fact(con: duckdb.DuckDBPyConnection, key: str, value: str) -> None:
 @contextlib.contextmanager
 def _file_lock(path: Path, timeout_s: float) -> Iterator[None]:
     path.parent.mkdir(parents=True, exist_ok=True)
-    fd = os.open(path, os.O_RDWR | os.O_CREAT, 0o644)
+    fd = os.open(path, os.O_RDWR | os.O_CREAT, 0o666)  # the umask decides
     try:
         deadline = time.monotonic() + timeout_s
         delay = 0.05
