@@ -11,7 +11,7 @@ import pandas as pd
 import statsmodels.api as sm
 from conftest import write_config
 
-from monitor.assess.findings import forbidden_findings, load_windows
+from monitor.assess.findings import evaluate, forbidden_findings, load_windows
 from monitor.config import load_config
 from monitor.ingest import ingest
 from monitor.refit import refit
@@ -80,3 +80,45 @@ def test_checks_use_the_stored_qr_fit_of_a_poorly_conditioned_window(tmp_path):
         windows.fits.weights[i], np.tile(ref.params[1:], (len(i), 1)), rtol=1e-6
     )
     np.testing.assert_allclose(windows.fits.std_errors[i, 2], ref.bse[3], rtol=1e-6)
+
+
+def test_windows_below_the_policy_minimum_show_estimates_but_are_not_assessed(tmp_path):
+    rng = np.random.default_rng(9)
+    n = 600
+    gender = rng.integers(0, 2, size=n).astype(float)
+    x = np.column_stack([rng.normal(size=n), gender])
+    y = x @ [1.0, 2.0] + rng.normal(size=n)
+    day = [date(2024, 2, 5) + timedelta(days=int(d)) for d in (np.arange(n) * 60) // n]
+    frame = pd.DataFrame(
+        {
+            "case_id": [f"c{i}" for i in range(n)],
+            "decided": [f"{d.isoformat()} 10:00:00" for d in day],
+            "who": "dm1",
+            "y": y,
+            "x0": x[:, 0],
+            "gender": x[:, 1],
+        }
+    )
+    frame.to_csv(tmp_path / "decisions.csv", index=False, float_format="%.17g")
+    doc = {
+        "store": {"path": "store/cw.duckdb"},
+        "decisions": {"id": "case_id", "decided_at": "decided", "decision_maker": "who",
+                      "judgment": "y", "timezone": "UTC"},
+        "cues": {"x0": {"type": "numeric"}, "gender": {"type": "binary"}},
+        "windows": {"length_days": 90, "step_days": 7, "min_rows": 40},
+        "policy": {"forbidden": ["gender"], "min_rows": 200, "tolerance": 0.05},
+    }  # fmt: skip
+    config = load_config(write_config(tmp_path / "cw.toml", doc))
+    Store(config).init()
+    ingest(config, [str(tmp_path / "decisions.csv")], kind="decisions")
+    refit(config)
+    with Store(config).reader() as con:
+        found, _ = evaluate(con, config)
+    direct = found[found["check_kind"] == "forbidden_direct"]
+    small, large = direct[direct["n"] < 200], direct[direct["n"] >= 200]
+    assert len(small) and len(large)
+    # Planted: a direct weight of 2 on gender, estimated in every window, small or not.
+    assert np.isfinite(small["direct"]).all() and np.allclose(small["direct"], 2.0, atol=0.6)
+    assert not small["assessable"].any() and not small["flagged"].any()
+    assert small["reason"].str.contains("not assessed").all()
+    assert large["flagged"].all()

@@ -87,7 +87,9 @@ def load_windows(
         else np.zeros((0, p, p))
     )
     moments = Moments(df["n_decisions"].to_numpy(dtype=float), mean, co)
-    fits = fit_lens(moments, None, names, min_rows=config.policy.min_rows)
+    # Fitted at the windows' own minimum so small windows still show their estimates;
+    # ``evaluate`` marks those below the policy's minimum as not assessed.
+    fits = fit_lens(moments, None, names, min_rows=config.windows.min_rows)
     qr = np.flatnonzero(df["method"].to_numpy() == "qr") if m else np.zeros(0, int)
     if len(qr):
         fits = _stored_judge(con, df, qr, fits)
@@ -378,4 +380,21 @@ def evaluate(con, config: Config) -> tuple[pd.DataFrame, pd.DataFrame]:
         pd.concat(parts, ignore_index=True) if parts else pd.DataFrame(columns=FINDING_COLUMNS)
     )
     findings = findings.reindex(columns=FINDING_COLUMNS)
+    _below_policy_minimum(findings, config.policy.min_rows)
     return findings, proxies
+
+
+def _below_policy_minimum(findings: pd.DataFrame, min_rows: int) -> None:
+    """Windows with fewer decisions than the policy's minimum keep their estimates but
+    are not assessed: never flagged, with the reason beside them."""
+    n = pd.to_numeric(findings["n"], errors="coerce").to_numpy(dtype=float)
+    small = (n < min_rows) & (findings["check_kind"] != "achievement").to_numpy()
+    if not small.any():
+        return
+    findings.loc[small, "flagged"] = False
+    findings.loc[small, "assessable"] = False
+    note = f"below the policy minimum of {min_rows} decisions: shown, not assessed"
+    old = findings.loc[small, "reason"]
+    findings.loc[small, "reason"] = [
+        f"{r}; {note}" if isinstance(r, str) and r else note for r in old
+    ]
