@@ -253,6 +253,9 @@ def drift_findings(config: Config, w: StoredWindows) -> pd.DataFrame:
     if not len(cur):
         return pd.DataFrame(columns=FINDING_COLUMNS)
     first, second = w.fits.take(cur), w.fits.take(prev[cur])
+    # Both windows of a pair must reach the policy's minimum to be assessed.
+    n_all = w.meta["n_decisions"].to_numpy(dtype=float)
+    both_large = np.minimum(n_all[cur], n_all[prev[cur]]) >= config.policy.min_rows
     drift = weight_drift(first, second)
     limit = drift_limit(config.policy, config.windows)
     # Calibrated rule: the control limit's p (flag when p <= it); else the fixed alpha.
@@ -272,7 +275,7 @@ def drift_findings(config: Config, w: StoredWindows) -> pd.DataFrame:
         rows["ci_high"] = rows["std_weight"] + half
         rows["p_value"] = drift.p_value[:, j]
         rows["statistic"] = drift.z[:, j]
-        ok = np.isfinite(drift.p_value[:, j])
+        ok = np.isfinite(drift.p_value[:, j]) & both_large
         with np.errstate(invalid="ignore"):
             rows["flagged"] = (
                 ok
