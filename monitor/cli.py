@@ -1,7 +1,10 @@
 """The `cuewatch` command line: parse, call one stage function, print a summary or --json.
 
-No logic lives here that a test cannot reach through the stage modules.  User errors
-(bad configuration, bad input, a busy store) print one sentence to stderr and exit 2.
+No logic lives here that a test cannot reach through the stage modules.  Exit codes:
+0 success; 2 a user error (bad configuration, bad input, a busy store, a rejected
+file), one sentence on stderr; 3 (``assess``, ``nightly``) everything ran but alert
+notifications are still owed (failed, or left when the delivery budget ran out), one
+sentence on stderr after the normal output.
 """
 
 from __future__ import annotations
@@ -18,11 +21,12 @@ from monitor.config import ENV_VAR, Config, load_config
 from monitor.errors import UserError
 
 EXIT_USER_ERROR = 2
+EXIT_NOT_DELIVERED = 3
 
 
-def fail(message: str) -> None:
+def fail(message: str, code: int = EXIT_USER_ERROR) -> None:
     click.echo(f"cuewatch: {message}", err=True)
-    sys.exit(EXIT_USER_ERROR)
+    sys.exit(code)
 
 
 def handles_user_errors(fn):
@@ -163,7 +167,7 @@ def fits(
     if as_json:
         print_json(rows)
         return
-    click.echo(describe_fits(rows))
+    click.echo(describe_fits(rows, binary_judgment=obj.config.judgment_is_binary))
 
 
 @main.command()
@@ -242,8 +246,10 @@ def assess(obj: Context, force: bool, as_json: bool) -> None:
     summary = run_assess(obj.config, force=force)
     if as_json:
         print_json(summary.to_json())
-        return
-    click.echo(summary.describe())
+    else:
+        click.echo(summary.describe())
+    if summary.undelivered:
+        fail(summary.delivery_problem().strip(), EXIT_NOT_DELIVERED)
 
 
 @main.command()
@@ -296,6 +302,8 @@ def nightly(obj: Context, as_json: bool) -> None:
         print_json(summary.to_json())
     else:
         click.echo(summary.describe())
+    if summary.status == "ok_with_failed_deliveries":
+        fail(summary.message, EXIT_NOT_DELIVERED)
     if summary.status != "ok":
         fail(summary.message)
 

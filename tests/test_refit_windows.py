@@ -426,6 +426,22 @@ def test_fits_json_carries_the_lens_model_equation(day_by_day):
         assert abs(d["r_a"] - rhs) < 1e-9, d
 
 
+def test_fits_table_says_what_the_outcome_figures_rest_on(day_by_day):
+    from click.testing import CliRunner
+
+    from monitor.cautions import LINEAR_PROBABILITY_NOTE, LINKED_OUTCOMES_NOTE
+    from monitor.cli import main
+    from monitor.refit.fits_read import describe_fits
+
+    out = CliRunner().invoke(main, ["--config", str(day_by_day["config"]), "fits", "--latest"])
+    assert out.exit_code == 0, out.output
+    text = " ".join(out.output.split())
+    assert " ".join(LINKED_OUTCOMES_NOTE.split()) in text
+    assert " ".join(LINEAR_PROBABILITY_NOTE.split()) not in text  # the priority is 0-100
+    docs = _fits_json(day_by_day["config"], "--latest")
+    assert LINEAR_PROBABILITY_NOTE in describe_fits(docs, binary_judgment=True)
+
+
 def test_fits_json_filters_by_decision_maker_and_latest(day_by_day):
     docs = _fits_json(day_by_day["config"], "--decision-maker", "H002")
     assert docs and {d["decision_maker"] for d in docs} == {"H002"}

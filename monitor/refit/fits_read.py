@@ -8,6 +8,7 @@ from datetime import date
 import numpy as np
 import pandas as pd
 
+from monitor.cautions import LINEAR_PROBABILITY_NOTE, LINKED_OUTCOMES_NOTE
 from monitor.config import Config
 from monitor.stats.lens import LENS_FIGURES
 from monitor.store.connection import Store
@@ -116,8 +117,9 @@ def _clean(d: dict) -> dict:
     return out
 
 
-def describe_fits(rows: list[dict]) -> str:
-    """The stored fits (``read_fits`` objects) as a text table for a person."""
+def describe_fits(rows: list[dict], *, binary_judgment: bool = False) -> str:
+    """The stored fits (``read_fits`` objects) as a text table for a person, with the
+    notes on outcome coverage (and, for a 0/1 judgment, the linear probability model)."""
     if not rows:
         return "No fits stored yet: run 'cuewatch refit'."
     from rich.console import Console
@@ -163,4 +165,5 @@ def describe_fits(rows: list[dict]) -> str:
         )
     console = Console(width=200, record=True, file=io.StringIO())
     console.print(table)
-    return console.export_text()
+    notes = [LINKED_OUTCOMES_NOTE, *([LINEAR_PROBABILITY_NOTE] if binary_judgment else [])]
+    return console.export_text() + "\n".join(notes) + "\n"
