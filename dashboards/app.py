@@ -41,5 +41,5 @@ st.set_page_config(
 )
 cfg = ui.config()
 st.sidebar.markdown("**cuewatch oversight**")
-st.sidebar.caption(f"Store: `{Path(cfg.store.path).name}` · read-only view")
+st.sidebar.caption(f"Store: {ui.md(Path(cfg.store.path).name)} · read-only view")
 st.navigation(PAGES).run()

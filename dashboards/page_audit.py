@@ -31,14 +31,13 @@ if build:
         try:
             data, result = download.build_audit_pack(ui.config(), quarter, as_of or None, formats)
         except Exception as exc:  # the export's own user errors: show them, do not crash
-            st.error(
-                f"The pack could not be built: {str(exc).splitlines()[0] if str(exc) else exc}"
-            )
+            first = str(exc).splitlines()[0] if str(exc) else type(exc).__name__
+            st.error(f"The pack could not be built: {ui.md(first)}")
             st.stop()
     st.session_state["audit_pack"] = (quarter, data, result.get("summary", ""))
 if "audit_pack" in st.session_state:
     q, data, summary = st.session_state["audit_pack"]
-    st.success(f"Audit pack for {q} is ready ({len(data) / 1024:.0f} KiB). {summary}")
+    st.success(f"Audit pack for {q} is ready ({len(data) / 1024:.0f} KiB). {ui.md(summary)}")
     st.download_button(
         "Download the audit pack (zip)", data, file_name=f"cuewatch-audit-{q}.zip",
         mime="application/zip",

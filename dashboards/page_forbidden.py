@@ -24,7 +24,7 @@ if flagged.empty:
 else:
     st.markdown(
         "\n".join(
-            f"- **{r.decision_maker}**: {r.cue}={r.level} "
+            f"- **{ui.md(r.decision_maker)}**: {ui.md(f'{r.cue}={r.level}')} "
             + ("direct" if r.flagged_direct else "")
             + (" and " if r.flagged_direct and r.flagged_indirect else "")
             + ("through proxies" if r.flagged_indirect else "")

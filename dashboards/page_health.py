@@ -21,8 +21,9 @@ cols[1].metric("Rows accepted", f"{int(accepted):,}")
 cols[2].metric("Rows quarantined", f"{int(health.quarantine['rows'].sum()):,}")
 if health.last_run and health.last_run.get("status") != "ok":
     st.warning(
-        f"Last run: {health.last_run['command']} {health.last_run['status']} "
-        f"at {str(health.last_run['finished_at'])[:16]}: {health.last_run['message'] or ''}"
+        f"Last run: {ui.md(health.last_run['command'])} {ui.md(health.last_run['status'])} "
+        f"at {ui.md(str(health.last_run['finished_at'])[:16])}: "
+        f"{ui.md(health.last_run['message'] or '')}"
     )
 
 st.subheader("Outcome coverage and lag by decision month")

@@ -23,7 +23,7 @@ figures = dict(zip(latest["figure"], latest["value"], strict=True))
 n_row = latest.iloc[0] if len(latest) else None
 
 cols = st.columns(5)
-cols[0].metric("Team", hist.team or "–")
+cols[0].metric("Team", ui.md(hist.team or None))
 cols[1].metric("Decisions (latest window)", "–" if n_row is None else int(n_row["n_decisions"]))
 cols[2].metric("Linked outcomes", "–" if n_row is None else int(n_row["n_linked"]))
 cols[3].metric("Consistency R_s", ui.number(figures.get("R_s")))

@@ -34,7 +34,8 @@ if view.flagged.empty:
 else:
     st.markdown(
         "\n".join(
-            f"- **{r.decision_maker}** ({r.team}): {r.why}" for r in view.flagged.itertuples()
+            f"- **{ui.md(r.decision_maker)}** ({ui.md(r.team)}): {ui.md(r.why)}"
+            for r in view.flagged.itertuples()
         )
     )
 

@@ -11,6 +11,8 @@ from __future__ import annotations
 import argparse
 import importlib
 import os
+import re
+import string
 import sys
 import time
 from collections.abc import Callable
@@ -25,6 +27,7 @@ from monitor.store.connection import StoreBusy
 from monitor.store.schema import StoreMismatch
 
 CACHE_TTL_S = 30
+_MD_PUNCTUATION = re.compile("[" + re.escape(string.punctuation) + "]")
 BUSY_RETRIES = 3
 
 
@@ -46,7 +49,7 @@ def config() -> Config:
     try:
         return _load_config(config_path())
     except ConfigError as exc:
-        st.error(f"Cannot read the configuration: {exc}")
+        st.error(f"Cannot read the configuration: {md(exc)}")
         st.stop()
         raise  # unreachable: st.stop ends the script run
 
@@ -97,11 +100,28 @@ def load(fn: Callable[..., Any], *args: Any, **kwargs: Any) -> Any:
             time.sleep(1.0 + attempt)
         except StoreMismatch as exc:
             notice.empty()
-            st.warning(f"No data to show yet: {exc}")
+            st.warning(f"No data to show yet: {md(exc)}")
             st.stop()
     notice.warning("The store is still busy (the nightly job is writing). Try again in a minute.")
     st.button("Try again", key=f"retry-{fn.__name__}")
     st.stop()
+
+
+def md(value: Any) -> str:
+    """``value`` as literal text for any Streamlit string that is read as Markdown
+    (st.markdown, captions, alerts, labels, metric values).
+
+    Ids, names, notes, cue levels, paths and messages come from data or from people, so
+    none of their characters may act: every ASCII punctuation character is
+    backslash-escaped (CommonMark lets any of them be escaped, and an escaped one is
+    plain text: no image, link, emphasis, HTML, code, directive or math), and line
+    breaks become spaces so a value cannot start a block of its own.  None is shown
+    as an en dash.
+    """
+    if value is None or (isinstance(value, float) and value != value):
+        return "–"
+    text = " ".join(str(value).splitlines())
+    return _MD_PUNCTUATION.sub(r"\\\g<0>", text)
 
 
 def caution() -> None:

@@ -111,7 +111,8 @@ def _plant_alert(config) -> int:
             [alert_id, now, now],
         )
         con.execute(
-            "INSERT INTO alert_history VALUES (?, ?, NULL, 'open', 'cuewatch assess', 'test', '{}')",
+            "INSERT INTO alert_history (alert_id, changed_at, from_state, to_state, changed_by, "
+            "note, evidence) VALUES (?, ?, NULL, 'open', 'cuewatch assess', 'test', '{}')",
             [alert_id, now],
         )
     return alert_id

@@ -19,6 +19,8 @@ alert and a recovered one gets it once.
 from __future__ import annotations
 
 import json
+import os
+import pwd
 from dataclasses import dataclass, field
 from datetime import date, datetime
 
@@ -316,10 +318,11 @@ def _resolve(con, config, alert_id: int, old_state: str, resolve_end, now, note:
     _queue(con, config, alert_id, "resolved", now)
 
 
-def _history(con, alert_id, at, from_state, to_state, by, note, evidence) -> None:
+def _history(con, alert_id, at, from_state, to_state, by, note, evidence, via=None) -> None:
     con.execute(
-        "INSERT INTO alert_history VALUES (?, ?, ?, ?, ?, ?, ?)",
-        [alert_id, at, from_state, to_state, by, note, evidence],
+        "INSERT INTO alert_history (alert_id, changed_at, from_state, to_state, changed_by, "
+        "note, evidence, os_user, via) VALUES (?, ?, ?, ?, ?, ?, ?, ?, ?)",
+        [alert_id, at, from_state, to_state, by, note, evidence, os_user(), via],
     )
 
 
@@ -413,14 +416,16 @@ def _alert_docs(
         docs.append(d)
     if history and docs:
         hist = con.execute(
-            "SELECT alert_id, changed_at, from_state, to_state, changed_by, note FROM alert_history "
-            f"WHERE alert_id IN ({', '.join('?' for _ in docs)}) ORDER BY changed_at, alert_id",
+            "SELECT alert_id, changed_at, from_state, to_state, changed_by, note, os_user, via "
+            f"FROM alert_history WHERE alert_id IN ({', '.join('?' for _ in docs)}) "
+            "ORDER BY changed_at, alert_id",
             [d["id"] for d in docs],
         ).fetchall()
         by_id: dict[int, list] = {}
         for h in hist:
+            keys = ("at", "from", "to", "by", "note", "os_user", "via")
             by_id.setdefault(int(h[0]), []).append(
-                {"at": _iso(h[1]), "from": h[2], "to": h[3], "by": h[4], "note": h[5]}
+                dict(zip(keys, (_iso(h[1]), *h[2:]), strict=True))
             )
         for d in docs:
             d["history"] = by_id.get(d["id"], [])
@@ -437,9 +442,20 @@ def list_alerts(config: Config, state: str | None = None, *, history: bool = Fal
 
 
 def acknowledge(
-    config: Config, alert_id: int, by: str, note: str, *, timeout_s: float | None = None
+    config: Config,
+    alert_id: int,
+    by: str,
+    note: str,
+    *,
+    timeout_s: float | None = None,
+    via: str = "cli",
 ) -> dict:
-    """Mark an open alert acknowledged by ``by`` with ``note``; returns the alert."""
+    """Mark an open alert acknowledged by ``by`` with ``note``; returns the alert.
+
+    ``by`` is the name the person gave; the history row also records the operating-system
+    account this process runs as (``os_user``) and ``via``, how the acknowledgement came
+    in ('cli', or the dashboard's own wording), neither of which the person types.
+    """
     if not by.strip():
         raise AlertUsageError("--by must name who acknowledges the alert.")
     store = Store(config)
@@ -464,12 +480,23 @@ def acknowledge(
                 "note = ?, updated_at = ? WHERE alert_id = ?",
                 [by, now, note, now, alert_id],
             )
-            _history(con, alert_id, now, "open", "acknowledged", by, note, None)
+            _history(con, alert_id, now, "open", "acknowledged", by, note, None, via)
             con.execute("COMMIT")
         except BaseException:
             con.execute("ROLLBACK")
             raise
         return _alert_docs(con, [alert_id], history=True)[0]
+
+
+def os_user() -> str:
+    """The operating-system account this process runs as (its effective uid), such as
+    'alice'; 'uid 1001' for an id without a name.  Read from the kernel, not from $USER,
+    which the caller sets."""
+    uid = os.geteuid()
+    try:
+        return pwd.getpwuid(uid).pw_name
+    except KeyError:
+        return f"uid {uid}"
 
 
 def _iso(v) -> str | None:

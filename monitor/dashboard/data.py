@@ -13,6 +13,9 @@ The data-health page, the audit pack and launching the app live in
 
 from __future__ import annotations
 
+import hmac
+import os
+import time
 from dataclasses import dataclass
 from datetime import date
 from pathlib import Path
@@ -325,16 +328,64 @@ class AckResult:
     alert: dict | None = None
 
 
+@dataclass(frozen=True)
+class AckGate:
+    """What the acknowledge form asks for and tells: ``secret_env`` names the variable
+    holding the shared secret (None: no secret asked); ``notice`` says how an
+    acknowledgement is recorded."""
+
+    secret_env: str | None
+    notice: str
+
+
 BUSY_MESSAGE = "The store is busy (the nightly job is writing); try again in a minute."
+# A wrong secret costs the guesser this long (per attempt, per browser session).
+WRONG_SECRET_DELAY_S = 0.5
 
 
-def acknowledge_alert(config: Config, alert_id: int, by: str, note: str) -> AckResult:
+def ack_gate(config: Config) -> AckGate:
+    """The acknowledge form's requirements under ``config`` ([dashboard] ack_secret_env)."""
+    from monitor.assess.alerts import os_user
+
+    env = config.dashboard.ack_secret_env
+    notice = (
+        "Recorded with the name you type and the operating-system account the dashboard "
+        f"runs as ({os_user()})."
+    )
+    if env:
+        notice += " Acknowledging needs the shared secret."
+    return AckGate(env, notice)
+
+
+def acknowledge_alert(
+    config: Config, alert_id: int, by: str, note: str, *, secret: str | None = None
+) -> AckResult:
     """Acknowledge through ``monitor.assess.alerts.acknowledge`` (the store's single writer,
-    short lock timeout).  A busy store or a user error becomes a message, not a crash."""
+    short lock timeout).  A busy store or a user error becomes a message, not a crash.
+
+    With ``[dashboard] ack_secret_env`` set, ``secret`` must equal that variable's value
+    in the dashboard's environment (compared in constant time; a wrong one waits
+    WRONG_SECRET_DELAY_S); while the variable is unset or empty nothing can be
+    acknowledged here.  The history row records how the acknowledgement came in.
+    """
     from monitor.assess.alerts import AlertUsageError, acknowledge
 
+    via = "dashboard"
+    env = config.dashboard.ack_secret_env
+    if env:
+        expected = os.environ.get(env, "")
+        if not expected:
+            return AckResult(
+                False,
+                f"Acknowledging is switched off here: the shared secret ({env}, named by "
+                "[dashboard] ack_secret_env) is not set for the dashboard.",
+            )
+        if not hmac.compare_digest((secret or "").encode(), expected.encode()):
+            time.sleep(WRONG_SECRET_DELAY_S)
+            return AckResult(False, "The shared secret is wrong; the alert was not acknowledged.")
+        via = "dashboard, shared secret checked"
     try:
-        alert = acknowledge(config, int(alert_id), by, note, timeout_s=3.0)
+        alert = acknowledge(config, int(alert_id), by, note, timeout_s=3.0, via=via)
     except StoreBusy:
         return AckResult(False, BUSY_MESSAGE)
     except AlertUsageError as exc:

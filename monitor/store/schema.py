@@ -244,6 +244,19 @@ MIGRATIONS: list[tuple[int, str, list[str]]] = [
             "ALTER TABLE policy_findings ADD COLUMN change_high DATE",
         ],
     ),
+    (
+        5,
+        "alert_history: the operating-system account behind each change and, for an "
+        "acknowledgement, the way it came in",
+        [
+            # changed_by is the name a person typed; os_user is the account the cuewatch
+            # process ran as (not typed, so not chosen by whoever reached the dashboard).
+            "ALTER TABLE alert_history ADD COLUMN os_user VARCHAR",
+            # How an acknowledgement came in ('cli', 'dashboard', 'dashboard, shared
+            # secret checked'); NULL for the changes assess makes.
+            "ALTER TABLE alert_history ADD COLUMN via VARCHAR",
+        ],
+    ),
 ]
 
 
