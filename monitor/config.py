@@ -9,6 +9,7 @@ directory of the configuration file.
 from __future__ import annotations
 
 import hashlib
+import ipaddress
 import os
 import re
 import tomllib
@@ -211,6 +212,33 @@ class EmailConfig(_Strict):
     username_env: str | None = None
     password_env: str | None = None
     timeout_s: float = Field(20.0, gt=0)
+    # Credentials over plain SMTP only to a relay on this machine, and only when asked.
+    allow_plaintext_auth: bool = False
+
+    @model_validator(mode="after")
+    def _no_credentials_in_clear(self) -> EmailConfig:
+        has_credentials = self.username_env is not None or self.password_env is not None
+        if self.allow_plaintext_auth and not is_loopback_host(self.host):
+            raise ValueError(
+                f"allow_plaintext_auth applies only to a relay on a loopback address "
+                f"(127.0.0.1, ::1 or localhost), not {self.host!r}"
+            )
+        if has_credentials and self.security == "none" and not self.allow_plaintext_auth:
+            raise ValueError(
+                'refusing to send the SMTP credentials without TLS: set security = "starttls" '
+                'or "ssl", or allow_plaintext_auth = true for a relay on a loopback address'
+            )
+        return self
+
+
+def is_loopback_host(host: str) -> bool:
+    """True for an IP literal on the loopback network (127.0.0.0/8, ::1) or 'localhost'."""
+    if host.strip().lower().rstrip(".") == "localhost":
+        return True
+    try:
+        return ipaddress.ip_address(host.strip().strip("[]")).is_loopback
+    except ValueError:
+        return False
 
 
 class WebhookConfig(_Strict):
@@ -232,6 +260,9 @@ class AlertsConfig(_Strict):
     file: Path | None = None
     email: EmailConfig | None = None
     webhook: WebhookConfig | None = None
+    # Wall-clock limit on one run's deliveries (all sinks, retries and waits included);
+    # what is left stays in the outbox for the next run.
+    delivery_budget_s: float = Field(60.0, gt=0)
 
 
 class ScheduleConfig(_Strict):

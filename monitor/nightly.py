@@ -1,8 +1,10 @@
 """The nightly job: ingest the landing folders, refresh the fits, assess the policy.
 
 Each stage talks to the others only through the store.  The run is recorded in the
-``runs`` table (status ok / failed with its message) so the dashboard can show the
-last successful nightly run.
+``runs`` table so the dashboard can show the last successful nightly run.  Status:
+``ok``; ``ok_with_failed_files`` (a file was rejected; the others went in);
+``ok_with_failed_deliveries`` (every stage ran but notifications are still owed:
+failed, or left when the delivery budget ran out); ``failed`` (with its message).
 """
 
 from __future__ import annotations
@@ -12,6 +14,7 @@ import uuid
 from dataclasses import dataclass, field
 from datetime import datetime
 
+from monitor.assess.sinks import redact
 from monitor.config import Config
 from monitor.store.connection import Store
 from monitor.store.rules import utc_now
@@ -35,12 +38,16 @@ class NightlySummary:
     def describe(self) -> str:
         """One line for a person."""
         ing, ref, ass = self.ingest, self.refit, self.assess
-        return (
+        text = (
             f"Nightly run {self.run_id}: {self.status}. Ingested {ing.get('accepted', 0)} rows "
             f"({ing.get('quarantined', 0)} quarantined, {ing.get('duplicates', 0)} duplicates); "
             f"{ref.get('windows_fitted', 0)} window fit(s) refreshed; "
-            f"alerts opened {len(ass.get('opened', []))}, resolved {len(ass.get('resolved', []))}."
+            f"alerts opened {len(ass.get('opened', []))}, resolved {len(ass.get('resolved', []))}; "
+            f"notifications delivered {ass.get('delivered', 0)}"
         )
+        if ass.get("undelivered"):
+            text += f", not delivered {ass['undelivered']} (retried on the next run)"
+        return text + "."
 
 
 def run_nightly(config: Config, *, now: datetime | None = None) -> NightlySummary:
@@ -59,21 +66,36 @@ def run_nightly(config: Config, *, now: datetime | None = None) -> NightlySummar
         result = ingest(config, (), now=now)
         summary.ingest = result.to_json()
         summary.refit = refit(config).to_json()
-        summary.assess = assess(config, now=now).to_json()
+        assessed = assess(config, now=now)
+        summary.assess = assessed.to_json()
         failed = result.failed_files
-        summary.status = "ok" if not failed else "ok_with_failed_files"
+        # A rejected file outranks owed notifications (exit 2 before 3); the message
+        # names both.
+        summary.status = "ok"
+        problems = []
         if failed:
-            summary.message = (
+            summary.status = "ok_with_failed_files"
+            problems.append(
                 f"{len(failed)} file(s) failed; first: {failed[0].path}: {failed[0].message}"
             )
+        if assessed.undelivered:
+            if not failed:
+                summary.status = "ok_with_failed_deliveries"
+            problems.append(assessed.delivery_problem().strip())
+        summary.message = " ".join(problems)
     except Exception as exc:
         summary.status = "failed"
         summary.message = str(exc).splitlines()[0] if str(exc) else type(exc).__name__
+        summary.message = redact(summary.message, _urls(config))
         if not isinstance(exc, StoreMismatch):  # a store that is not ready cannot hold it
             _record(store, run_id, started, summary)
         raise
     _record(store, run_id, started, summary)
     return summary
+
+
+def _urls(config: Config) -> list[str]:
+    return [config.alerts.webhook.url] if config.alerts.webhook else []
 
 
 def _record(store: Store, run_id: str, started, summary: NightlySummary) -> None:

@@ -10,6 +10,7 @@ record (``synthetic_logs.ostwyn.load_truth``), not from cuewatch.
 
 from __future__ import annotations
 
+import base64
 import email
 import email.policy
 import hashlib
@@ -144,7 +145,7 @@ def test_assess_e_mails_each_opened_alert_to_a_local_smtp_server(demo_config, tm
 
 
 def test_assess_posts_signed_webhooks_that_verify_independently(demo_config, tmp_path, monkeypatch):
-    secret = "a-test-secret"
+    secret = "whsec_" + base64.b64encode(b"a test secret of 24 bytes").decode()
     monkeypatch.setenv("CW_TEST_HOOK_SECRET", secret)
     cfg_path = _copy(demo_config, tmp_path)
     _forget_assessment(cfg_path)
@@ -157,12 +158,19 @@ def test_assess_posts_signed_webhooks_that_verify_independently(demo_config, tmp
     kinds = {d["kind"] for d in open_docs.values()}
     assert {"forbidden_cue", "proxy_use"} <= kinds
     for headers, body in rx.requests:
-        # HMAC-SHA256 over the exact body bytes (RFC 2104; Python's hmac module).
-        expected = "sha256=" + hmac.new(secret.encode(), body, hashlib.sha256).hexdigest()
-        assert hmac.compare_digest(headers["X-Cuewatch-Signature"], expected)
+        h = {k.lower(): v for k, v in headers.items()}
+        # Standard Webhooks (spec/standard-webhooks.md, "Signature scheme"): HMAC-SHA256
+        # under the base64 key after "whsec_" over "{id}.{timestamp}.{body}", sent as
+        # "v1,<base64>"; computed here with hmac and base64 only.
+        key = base64.b64decode(secret.removeprefix("whsec_"))
+        signed = f"{h['webhook-id']}.{h['webhook-timestamp']}.".encode() + body
+        expected = "v1," + base64.b64encode(hmac.new(key, signed, hashlib.sha256).digest()).decode()
+        assert hmac.compare_digest(h["webhook-signature"], expected)
         got = json.loads(body)
+        assert got.pop("delivery_id") == h["webhook-id"]
         assert got == {**open_docs[got["id"]], "event": "opened"}
-    assert len({h["X-Cuewatch-Delivery"] for h, _ in rx.requests}) == len(rx.requests)
+    ids = {v for h, _ in rx.requests for k, v in h.items() if k.lower() == "webhook-id"}
+    assert len(ids) == len(rx.requests)  # one id per alert event
 
 
 def test_a_failing_receiver_gets_each_alert_once_after_it_recovers(

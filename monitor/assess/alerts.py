@@ -10,14 +10,17 @@ new episode after resolution is a new alert.  Every state change is a row in
 (history found on a first run over old data) is recorded as resolved and not
 notified: notifications are for things that need attention now.
 
-Delivery uses an outbox (``alert_deliveries``): each (alert, event, sink) is written
-in the same transaction as the state change, then attempted; a failure is recorded
-and retried on the next run until it succeeds, so a failing sink never loses an
-alert and a recovered one gets it once.
+Delivery uses an outbox (``alert_deliveries``, ``monitor.assess.outbox``): each
+(alert, event, sink) is written in the same transaction as the state change and sent
+after that transaction has committed and the writer connection is closed, within the
+run's delivery budget; a failure is recorded and retried on the next run until it
+succeeds, so a failing sink never loses an alert and never holds the store.  Every
+attempt carries the same delivery id, so a receiver drops the copy a crash can cause.
 """
 
 from __future__ import annotations
 
+import contextlib
 import json
 import os
 import pwd
@@ -28,6 +31,7 @@ import numpy as np
 import pandas as pd
 
 from monitor.assess.findings import JOINT, evaluate
+from monitor.assess.outbox import Job, deliver_jobs, delivery_claim, pending, queue
 from monitor.cautions import CAUTION
 from monitor.config import Config
 from monitor.errors import UserError
@@ -58,10 +62,20 @@ class AssessSummary:
     resolved: list[int] = field(default_factory=list)
     recorded_history: int = 0
     delivered: int = 0
+    # One redacted message per notification that failed in this run.
     delivery_failures: list[str] = field(default_factory=list)
+    # Notifications not attempted because the run's delivery budget had run out.
+    deferred: int = 0
+    # Another cuewatch process was delivering the outbox; this run left it alone.
+    delivering_elsewhere: bool = False
+
+    @property
+    def undelivered(self) -> int:
+        """Notifications this run should have sent and did not (failed or deferred)."""
+        return len(self.delivery_failures) + self.deferred
 
     def to_json(self) -> dict:
-        return self.__dict__.copy()
+        return {**self.__dict__, "undelivered": self.undelivered}
 
     def describe(self) -> str:
         """One line for a person."""
@@ -72,10 +86,22 @@ class AssessSummary:
                 f"Assessed {self.findings} finding rows ({self.flagged_windows} flagged windows); "
                 f"alerts opened {len(self.opened)}, resolved {len(self.resolved)}."
             )
-        tail = f" Notifications delivered: {self.delivered}."
-        if self.delivery_failures:
-            tail += f" Failed (will retry next run): {len(self.delivery_failures)}; first: {self.delivery_failures[0]}"
-        return head + tail
+        return f"{head} Notifications delivered: {self.delivered}.{self.delivery_problem()}"
+
+    def delivery_problem(self) -> str:
+        """A sentence on undelivered notifications ('' when there are none)."""
+        text = ""
+        if self.undelivered:
+            text = (
+                f" Notifications not delivered: {self.undelivered} "
+                f"({len(self.delivery_failures)} failed, {self.deferred} left when the "
+                "delivery budget ran out); they are retried on the next run."
+            )
+            if self.delivery_failures:
+                text += f" First: {self.delivery_failures[0]}"
+        if self.delivering_elsewhere:
+            text += " Another cuewatch process is delivering the pending notifications."
+        return text
 
 
 # --- assess ---------------------------------------------------------------------------
@@ -87,31 +113,52 @@ def assess(
     """Evaluate the policy on the stored fits, update alerts, notify.
 
     Idempotent: when the fits have not changed since the last assessment nothing is
-    recomputed; pending notifications are still retried.
+    recomputed; pending notifications are still retried.  Notifications are sent after
+    the alerts' transaction has committed and the store's writer lock is released
+    (``monitor.assess.outbox``); ``summary.undelivered`` counts those still owed.
     """
     now = now or utc_now()
     store = Store(config)
-    with store.writer() as con:
-        store.ensure_ready(con)
-        fits_stamp = get_fact(con, "last_refit") or ""
-        summary = AssessSummary(evaluated=False)
-        if force or get_fact(con, "assessed_fits") != fits_stamp:
-            findings, proxies = evaluate(con, config)
-            con.execute("BEGIN")
-            try:
-                _write_findings(con, findings, proxies, now)
-                summary = _reconcile(con, config, findings, now)
-                summary.evaluated = True
-                summary.findings = len(findings)
-                summary.flagged_windows = int(findings["flagged"].fillna(False).astype(bool).sum())
-                set_fact(con, "assessed_fits", fits_stamp)
-                con.execute("COMMIT")
-            except BaseException:
-                con.execute("ROLLBACK")
-                raise
-        delivered, failures = deliver_pending(con, config, sleep=sleep)
-        summary.delivered, summary.delivery_failures = delivered, failures
+    with contextlib.ExitStack() as held:
+        with store.writer() as con:
+            store.ensure_ready(con)
+            fits_stamp = get_fact(con, "last_refit") or ""
+            summary = AssessSummary(evaluated=False)
+            if force or get_fact(con, "assessed_fits") != fits_stamp:
+                findings, proxies = evaluate(con, config)
+                con.execute("BEGIN")
+                try:
+                    _write_findings(con, findings, proxies, now)
+                    summary = _reconcile(con, config, findings, now)
+                    summary.evaluated = True
+                    summary.findings = len(findings)
+                    flagged = findings["flagged"].fillna(False).astype(bool)
+                    summary.flagged_windows = int(flagged.sum())
+                    set_fact(con, "assessed_fits", fits_stamp)
+                    con.execute("COMMIT")
+                except BaseException:
+                    con.execute("ROLLBACK")
+                    raise
+            # Claimed before the outbox is read, so no other process has a stale copy.
+            claimed = held.enter_context(delivery_claim(store))
+            jobs = _jobs(con) if claimed else []
+        # The writer connection is closed: from here on nothing waits for a receiver.
+        summary.delivering_elsewhere = not claimed
+        report = deliver_jobs(store, config, jobs, sleep=sleep)
+    summary.delivered, summary.delivery_failures = report.delivered, report.failures
+    summary.deferred = report.deferred
     return summary
+
+
+def _jobs(con) -> list[Job]:
+    """The undelivered outbox rows with the notification each one sends."""
+    rows = pending(con)
+    docs = {d["id"]: d for d in _alert_docs(con, sorted({r[0] for r in rows}))} if rows else {}
+    return [
+        Job(alert_id, event, sink, attempts, delivery,
+            {**docs[alert_id], "event": event, "delivery_id": delivery})
+        for alert_id, event, sink, attempts, delivery in rows
+    ]  # fmt: skip
 
 
 def _write_findings(con, findings: pd.DataFrame, proxies: pd.DataFrame, now: datetime) -> None:
@@ -304,7 +351,7 @@ def _create(con, config, key, team, open_end, resolve_end, evidence, now) -> int
             ev,
         )
     else:
-        _queue(con, config, alert_id, "opened", now)
+        queue(con, config, alert_id, "opened", now)
     return alert_id
 
 
@@ -315,7 +362,7 @@ def _resolve(con, config, alert_id: int, old_state: str, resolve_end, now, note:
         [now, resolve_end, now, alert_id],
     )
     _history(con, alert_id, now, old_state, "resolved", "cuewatch assess", note, None)
-    _queue(con, config, alert_id, "resolved", now)
+    queue(con, config, alert_id, "resolved", now)
 
 
 def _history(con, alert_id, at, from_state, to_state, by, note, evidence, via=None) -> None:
@@ -324,54 +371,6 @@ def _history(con, alert_id, at, from_state, to_state, by, note, evidence, via=No
         "note, evidence, os_user, via) VALUES (?, ?, ?, ?, ?, ?, ?, ?, ?)",
         [alert_id, at, from_state, to_state, by, note, evidence, os_user(), via],
     )
-
-
-def _queue(con, config: Config, alert_id: int, event: str, now) -> None:
-    from monitor.assess.sinks import configured_sinks
-
-    for sink in configured_sinks(config.alerts):
-        con.execute(
-            "INSERT INTO alert_deliveries VALUES (?, ?, ?, 'pending', 0, NULL, ?, NULL)",
-            [alert_id, event, sink, now],
-        )
-
-
-# --- delivery -------------------------------------------------------------------------
-
-
-def deliver_pending(con, config: Config, *, sleep=None) -> tuple[int, list[str]]:
-    """Attempt every undelivered (alert, event, sink); record each outcome."""
-    from monitor.assess.sinks import SinkError, deliver
-
-    pending = con.execute(
-        "SELECT alert_id, event, sink, attempts FROM alert_deliveries "
-        "WHERE status <> 'delivered' ORDER BY created_at, alert_id, event, sink"
-    ).fetchall()
-    delivered, failures = 0, []
-    for alert_id, event, sink, attempts in pending:
-        doc = _alert_docs(con, [alert_id])[0]
-        doc["event"] = event
-        hint = f"cuewatch --config {config.source} ack {alert_id} --by NAME --note TEXT"
-        kwargs = {"ack_hint": hint}
-        if sleep is not None:
-            kwargs["sleep"] = sleep
-        try:
-            deliver(config.alerts, doc, sink, **kwargs)
-        except (SinkError, OSError) as exc:
-            con.execute(
-                "UPDATE alert_deliveries SET status = 'failed', attempts = ?, last_error = ? "
-                "WHERE alert_id = ? AND event = ? AND sink = ?",
-                [attempts + 1, str(exc)[:500], alert_id, event, sink],
-            )
-            failures.append(f"alert {alert_id} {event} via {sink}: {exc}")
-            continue
-        con.execute(
-            "UPDATE alert_deliveries SET status = 'delivered', attempts = ?, last_error = NULL, "
-            "delivered_at = ? WHERE alert_id = ? AND event = ? AND sink = ?",
-            [attempts + 1, utc_now(), alert_id, event, sink],
-        )
-        delivered += 1
-    return delivered, failures
 
 
 # --- reading and acknowledging ------------------------------------------------------------
