@@ -211,3 +211,83 @@ def test_bad_ack_secret_env_is_a_configuration_error(tmp_path):
     cfg = make_config(tmp_path, dashboard={"ack_secret_env": "not a name"})
     with pytest.raises(ConfigError, match="dashboard.ack_secret_env"):
         load_config(cfg)
+
+
+# --- in a real browser: nothing named in the data is fetched -------------------------------
+
+CHROMIUM = Path("/usr/bin/chromium")
+
+
+@pytest.mark.browser
+@pytest.mark.skipif(not CHROMIUM.exists(), reason="Debian's chromium is not installed; run `make browser`")  # fmt: skip
+def test_the_browser_requests_nothing_named_in_the_data(hostile, tmp_path):
+    """`cuewatch dashboard` on the hostile store, pages opened in headless Chromium: every
+    request the pages make is recorded (playwright's request event fires before any
+    connection), and none goes to the address in the hostile id or note."""
+    import socket
+    import subprocess
+    import sys
+    import time
+    import urllib.request
+
+    from playwright.sync_api import sync_playwright
+
+    from monitor.assess.alerts import acknowledge
+
+    cfg, alert_id = copy_of(hostile, tmp_path)
+    note = f"{IMAGE_MD} {BOLD_MD} <img src=http://127.0.0.1:9/y.png>"
+    acknowledge(load_config(cfg), alert_id, BOLD_MD, note)
+    with socket.socket() as s:
+        s.bind(("127.0.0.1", 0))
+        port = s.getsockname()[1]
+    env = {k: v for k, v in os.environ.items() if k != "CUEWATCH_CONFIG"}
+    log = open(tmp_path / "dashboard.log", "wb")
+    proc = subprocess.Popen(
+        [sys.executable, "-m", "monitor", "--config", str(cfg), "dashboard", "--port", str(port)],
+        env=env, stdout=log, stderr=subprocess.STDOUT,
+    )  # fmt: skip
+    url = f"http://127.0.0.1:{port}"
+    requested: list[str] = []
+    try:
+        deadline = time.monotonic() + 60
+        while True:
+            try:
+                with urllib.request.urlopen(f"{url}/_stcore/health", timeout=2) as r:
+                    if r.read().strip() == b"ok":
+                        break
+            except OSError:
+                pass
+            assert proc.poll() is None and time.monotonic() < deadline, "dashboard did not start"
+            time.sleep(0.3)
+        with sync_playwright() as p:
+            browser = p.chromium.launch(
+                executable_path=str(CHROMIUM), headless=True,
+                args=["--no-sandbox", "--disable-gpu", "--no-first-run"],
+            )  # fmt: skip
+            page = browser.new_page()
+            page.on("request", lambda req: requested.append(req.url))
+            texts = {}
+            for path, ready in (("", "Flagged now"), ("alerts", "Acknowledged")):
+                page.goto(f"{url}/{path}", wait_until="domcontentloaded")
+                page.get_by_text(ready, exact=False).first.wait_for(timeout=45_000)
+                page.wait_for_selector(
+                    '[data-testid="stStatusWidget"]', state="detached", timeout=45_000
+                )
+                if path == "alerts":  # show the acknowledged alert with its note
+                    page.get_by_role("tab", name="Acknowledged").click()
+                    page.locator('[data-testid="stExpander"] summary').last.click()
+                    page.get_by_text("Acknowledged by", exact=False).first.wait_for(timeout=15_000)
+                page.wait_for_timeout(1000)
+                texts[path] = page.inner_text("body")
+            browser.close()
+    finally:
+        proc.terminate()
+        try:
+            proc.wait(timeout=10)
+        except subprocess.TimeoutExpired:
+            proc.kill()
+        log.close()
+    assert any(r.startswith(url) for r in requested)  # the recorder saw the page's own
+    assert not [r for r in requested if "127.0.0.1:9/" in r], requested
+    assert IMAGE_MD in texts[""] and TEAM in texts[""]  # shown as the literal text
+    assert note in texts["alerts"] and BOLD_MD in texts["alerts"]
