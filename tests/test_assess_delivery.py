@@ -48,6 +48,7 @@ from helpers.local_servers import SmtpInbox, WebhookReceiver, free_port
 
 from monitor.assess.alerts import _reconcile, acknowledge, assess
 from monitor.assess.findings import FINDING_COLUMNS
+from monitor.assess.outbox import delivery_claim
 from monitor.config import ConfigError, load_config
 from monitor.store.connection import Store
 
@@ -366,6 +367,22 @@ def test_assess_killed_during_delivery_then_rerun_delivers_every_alert_with_one_
     # Each kill left exactly the notification in flight to be sent again.
     duplicates = len(rx.requests) + len(inbox.messages) - 2 * len(ids)
     assert duplicates == kills
+
+
+def test_one_process_delivers_at_a_time(tmp_path):
+    with WebhookReceiver() as rx:
+        cfg_path, ids = _queued_store(tmp_path, {"webhook": _webhook(rx.url)}, n_alerts=2)
+        config = load_config(cfg_path)
+        with delivery_claim(Store(config)) as mine:  # another run is delivering
+            assert mine
+            proc = run_cli(cfg_path, "assess", "--json")
+        assert proc.returncode == 0, text(proc)
+        summary = json.loads(text(proc)[0])
+        assert summary["delivering_elsewhere"] and summary["delivered"] == 0
+        assert rx.requests == [] and {r[3] for r in _outbox(cfg_path)} == {"pending"}
+        after = assess(config)  # the claim is free again
+    assert after.delivered == len(ids) and not after.delivering_elsewhere
+    assert sorted(d["id"] for d in rx.delivered()) == ids
 
 
 # --- item 8: failed deliveries are an exit code ----------------------------------------
