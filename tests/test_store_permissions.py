@@ -120,6 +120,16 @@ def test_init_tightens_a_store_created_before_the_rule(tmp_path):
     assert mode(store) == 0o600 and mode(lock) == 0o600
 
 
+def test_init_on_a_mistaken_folder_path_leaves_the_folder_as_it_was(tmp_path):
+    cfg = make_config(tmp_path)
+    folder = Path(load_config(cfg).store.path)
+    folder.mkdir(parents=True)
+    os.chmod(folder, 0o755)
+    (folder / "notes.txt").write_text("someone's")
+    run_cli(cfg, "init")  # fails one way or another: the path is a folder
+    assert mode(folder) == 0o755
+
+
 @pytest.mark.parametrize(
     ("value", "expect"),
     [("0o640", 0o640), ("600", 0o600), ("0660", 0o660), (0o644, 0o644)],

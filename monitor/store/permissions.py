@@ -53,12 +53,14 @@ def owner_only(config: Config) -> Iterator[None]:
 
 
 def apply_mode(config: Config, *paths: Path) -> None:
-    """Give existing files the configured mode (folders their folder mode); paths that do
-    not exist are skipped.  For files created before the rule, or by another umask."""
-    mode = config.store.file_mode
+    """Give existing regular files the configured mode, for files created before the rule
+    or under another umask.  Anything else (missing, a folder, a device) is left alone:
+    a mistaken ``store.path`` must not change the permissions of someone's folder.  A file
+    this account may not chmod (another owner's) keeps its mode; opening it decides."""
     for path in paths:
-        with contextlib.suppress(FileNotFoundError):
-            os.chmod(path, folder_mode(mode) if path.is_dir() else mode)
+        if path.is_file():
+            with contextlib.suppress(PermissionError):
+                os.chmod(path, config.store.file_mode)
 
 
 def set_process_umask(config: Config) -> None:
