@@ -150,38 +150,51 @@ def operating_characteristics_lines(config: Config, data: dict | None = None) ->
     figures = data["rules"][rule]
     run, settings = data["run"], data["settings"]
     if rule == "calibrated":
-        scheme = [
-            "Alert rule: calibrated - each weekly look compares a window's p-value with a",
-            "control limit set by simulation so that an innocent series opens at most",
+        scheme = (
+            "Alert rule: calibrated - each weekly look compares a window's p-value with a "
+            "control limit set by simulation so that an innocent series opens at most "
             f"{config.policy.false_alerts_per_100_years:g} direct or proxy and "
-            f"{config.policy.drift_false_alerts_per_100_years:g} drift alerts per 100 years.",
-        ]
+            f"{config.policy.drift_false_alerts_per_100_years:g} drift alerts per 100 years."
+        )
     else:
-        scheme = [
-            "Alert rule: per_window_fdr - the previous scheme (Benjamini-Hochberg within one",
-            "window end, drift at p < drift_alpha; overlapping weekly windows treated as",
-            "independent tests). The figures below are that old scheme's, kept for comparison;",
-            "it does not control false alerts over time.",
-        ]
+        scheme = (
+            "Alert rule: per_window_fdr - the previous scheme (Benjamini-Hochberg within one "
+            "window end, drift at p < drift_alpha; overlapping weekly windows treated as "
+            "independent tests). The figures below are that old scheme's, kept for "
+            "comparison; it does not control false alerts over time."
+        )
+    world = data["world"]
+    prose = [
+        scheme,
+        "The figures are SIMULATED, not measured on this organisation's decisions: a "
+        f"simulation with planted truth ({run['command']}, {run['date']}) ran the same "
+        "statistics and alert rules as this pack on synthetic decision-makers. Its "
+        f"assumptions: {world['cues']}; {world['judges']}; {world['organisation']} per "
+        "organisation. Real decision-makers with other volumes, cues or consistency will "
+        "differ.",
+    ]
+    small = [
+        f"{r['volume']} ({100 * (1 - r['assessable_share']):.0f}%)"
+        for r in figures["false_alerts"]
+        if r["kind"] == "forbidden_cue" and (r["assessable_share"] or 0) < 0.95
+    ]
+    if small:
+        prose.append(
+            "Share of weekly windows below the policy's minimum of "
+            f"{settings['policy.min_rows']} decisions, and so not assessed, by decisions "
+            f"per 90 days: {', '.join(small)}."
+        )
     ours = {f"policy.{k}": v for k, v in config.policy.model_dump().items()}
     ours.update({f"windows.{k}": v for k, v in config.windows.model_dump().items()})
     differ = sorted(k for k, v in settings.items() if k in ours and ours[k] != v)
-    lines = [
-        *head,
-        *scheme,
-        "The figures are SIMULATED, not measured on this organisation's decisions: a",
-        f"simulation with planted truth ({run['command']}, {run['date']}) ran the same",
-        "statistics and alert rules as this pack on synthetic decision-makers. Its",
-        f"assumptions: {data['world']['cues']}; {data['world']['judges']}; "
-        f"{data['world']['organisation']} per organisation.",
-        "Real decision-makers with other volumes, cues or consistency will differ.",
-    ]
     if differ:
-        lines.append(
+        prose.append(
             "This configuration differs from the simulated settings in "
-            + ", ".join(differ)
-            + ": the figures are indicative only."
+            f"{', '.join(differ)}: the figures are indicative only."
         )
+    lines = list(head)
+    for text in prose:
+        lines += textwrap.wrap(text, 84, break_on_hyphens=False)
     kinds = ("forbidden_cue", "proxy_use", "drift")
     lines += [
         "False alerts per 100 innocent person-cue-years (exact 95% upper bound):",
