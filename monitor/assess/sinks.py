@@ -245,6 +245,13 @@ def _time_left(deadline: float | None, what: str) -> float | None:
     return left
 
 
+def _budget_note(deadline: float | None) -> str:
+    """Why a wait was cut short, when it was the budget that cut it."""
+    if deadline is not None and time.monotonic() >= deadline:
+        return "; the run's delivery budget ran out (left for the next run)"
+    return ""
+
+
 def _bounded(timeout_s: float, left: float | None) -> float:
     return timeout_s if left is None else min(timeout_s, left)
 
@@ -382,9 +389,11 @@ def send_email(
             f"e-mail sink: {where} refused every recipient ({', '.join(exc.recipients)})."
         ) from None
     except smtplib.SMTPException as exc:
-        raise SinkError(f"e-mail sink: {where}: {exc}.") from None
+        raise SinkError(f"e-mail sink: {where}: {exc}{_budget_note(deadline)}.") from None
     except (OSError, ssl.SSLError) as exc:
-        raise SinkError(f"e-mail sink: cannot reach {where} ({exc}).") from None
+        raise SinkError(
+            f"e-mail sink: cannot reach {where} ({exc}){_budget_note(deadline)}."
+        ) from None
     if refused:
         log.warning("e-mail sink: %s refused recipients %s", where, sorted(refused))
 
