@@ -19,17 +19,19 @@ REPO = Path(__file__).resolve().parents[1]
 if str(REPO) not in sys.path:  # benchmarks/ is not installed: import it from the checkout
     sys.path.insert(0, str(REPO))
 
+from benchmarks import alerts_world as world_model  # noqa: E402
 from benchmarks import bench_alerts as bench  # noqa: E402
+from benchmarks.alerts_checks import make_config  # noqa: E402
 
 
 @pytest.fixture(scope="module")
-def world() -> bench.World:
-    return bench.World.build()
+def world() -> world_model.World:
+    return world_model.World.build()
 
 
 def _rows(world, weights, sigma, n, seed):
     rng = np.random.default_rng(seed)
-    x = bench.draw_cues(rng, n)
+    x = world_model.draw_cues(rng, n)
     y = 50.0 + (x - world.mean) @ weights + sigma * rng.standard_normal(n)
     return x, y
 
@@ -43,19 +45,19 @@ def test_planted_sizes_are_what_an_ols_fit_finds_on_simulated_rows(world):
     # ordinary least squares fit (statsmodels) on 400,000 simulated decisions after the
     # change must find the same standardised sizes (sampling error ~0.002).
     rng = np.random.default_rng(7)
-    before, sigma = bench.innocent_policy(world, rng)
+    before, sigma = world_model.innocent_policy(world, rng)
     n = 400_000
     x, y = _rows(world, before, sigma, n, 1)
     assert abs(np.corrcoef(x[:, 0], x[:, 1])[0, 1] - 0.44) < 0.01
     fit = sm.OLS(y, sm.add_constant(x)).fit()
     assert 0.69 <= np.sqrt(fit.rsquared) <= 0.86  # R_s of an innocent judge: 0.70-0.85
 
-    direct = bench.planted_policy(world, before, sigma, bench.Plant("direct", 0.15))
+    direct = world_model.planted_policy(world, before, sigma, world_model.Plant("direct", 0.15))
     x, y = _rows(world, direct, sigma, n, 2)
     fit = sm.OLS(y, sm.add_constant(x)).fit()
     assert abs(_std(fit.params[1], x[:, 0], y) - 0.15) < 0.01
 
-    proxy = bench.planted_policy(world, before, sigma, bench.Plant("proxy", 0.25))
+    proxy = world_model.planted_policy(world, before, sigma, world_model.Plant("proxy", 0.25))
     x, y = _rows(world, proxy, sigma, n, 3)
     full = sm.OLS(y, sm.add_constant(x)).fit()
     alone = sm.OLS(y, sm.add_constant(x[:, :1])).fit()
@@ -63,12 +65,12 @@ def test_planted_sizes_are_what_an_ols_fit_finds_on_simulated_rows(world):
     assert abs(_std(indirect, x[:, 0], y) - 0.25) < 0.01
     assert abs(_std(full.params[1], x[:, 0], y)) < 0.01  # no direct use
 
-    drift = bench.planted_policy(world, before, sigma, bench.Plant("drift", 0.25))
+    drift = world_model.planted_policy(world, before, sigma, world_model.Plant("drift", 0.25))
     x0, y0 = _rows(world, before, sigma, n, 4)
     x1, y1 = _rows(world, drift, sigma, n, 5)
-    b0 = sm.OLS(y0, sm.add_constant(x0)).fit().params[1 + bench.DRIFTING]
-    b1 = sm.OLS(y1, sm.add_constant(x1)).fit().params[1 + bench.DRIFTING]
-    change = abs(b1 - b0) * x1[:, bench.DRIFTING].std(ddof=1) / y1.std(ddof=1)
+    b0 = sm.OLS(y0, sm.add_constant(x0)).fit().params[1 + world_model.DRIFTING]
+    b1 = sm.OLS(y1, sm.add_constant(x1)).fit().params[1 + world_model.DRIFTING]
+    change = abs(b1 - b0) * x1[:, world_model.DRIFTING].std(ddof=1) / y1.std(ddof=1)
     assert abs(change - 0.25) < 0.01
 
 
@@ -76,7 +78,7 @@ def test_planted_sizes_are_what_an_ols_fit_finds_on_simulated_rows(world):
 def tiny() -> dict:
     setup = bench.Setup(
         volumes=(1000,),
-        plants=(bench.Plant("direct", 0.4),),
+        plants=(world_model.Plant("direct", 0.4),),
         orgs_per_plant=1,
         tradeoff=(1.0,),
         tradeoff_volume=1000,
@@ -92,7 +94,7 @@ def test_a_large_direct_use_is_found_within_a_few_weeks(tiny):
     # weeks) follows the change, and the second look in a row opens the alert.
     for rule in bench.RULES:
         (row,) = tiny["rules"][rule]["detection"]
-        assert row["persons"] == bench.PLANTED_PER_ORG
+        assert row["persons"] == world_model.PLANTED_PER_ORG
         assert row["never_share"] == 0.0, rule
         assert row["median_weeks"] <= 6.0, (rule, row)
         assert row["p90_weeks"] <= 8.0, (rule, row)
@@ -124,7 +126,7 @@ def test_the_committed_figures_have_the_structure_the_harness_writes(tiny):
 def test_the_methodology_prints_the_figures_of_the_configured_rule(rule):
     figures = _committed()["rules"][rule]
     other = _committed()["rules"][next(r for r in bench.RULES if r != rule)]
-    text = methodology_text(bench.make_config(rule), "2026Q1", "2026-04-01T00:00:00Z")
+    text = methodology_text(make_config(rule), "2026Q1", "2026-04-01T00:00:00Z")
     assert "SIMULATED" in text
     assert ("old scheme" in text) == (rule == "per_window_fdr")
     for row in figures["false_alerts"]:
@@ -140,6 +142,6 @@ def test_the_methodology_prints_the_figures_of_the_configured_rule(rule):
 def test_a_configuration_unlike_the_simulation_is_told_so(tiny):
     from monitor.audit.report import operating_characteristics_lines
 
-    config = bench.make_config("calibrated", tolerance=0.2)
+    config = make_config("calibrated", tolerance=0.2)
     lines = "\n".join(operating_characteristics_lines(config, tiny))
     assert "differs from the simulated settings in policy.tolerance" in lines
