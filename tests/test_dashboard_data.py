@@ -5,6 +5,7 @@ truth, against the store read with plain SQL, and against statsmodels on raw row
 from __future__ import annotations
 
 import json
+import re
 import subprocess
 import sys
 import time
@@ -53,7 +54,9 @@ def planted(truth: dict, kind: str) -> str:
 
 
 def markdown_text(at: AppTest) -> str:
-    return "\n".join(m.value for m in at.markdown)
+    """The pages' Markdown with data escapes undone (CommonMark: a backslash before ASCII
+    punctuation stands for that character), so ids and cue levels read as shown."""
+    return re.sub(r"\\([!-/:-@\[-`{-~])", r"\1", "\n".join(m.value for m in at.markdown))
 
 
 # --- Team at a glance -------------------------------------------------------------------
