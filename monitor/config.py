@@ -8,14 +8,17 @@ directory of the configuration file.
 
 from __future__ import annotations
 
+import codecs
+import functools
 import hashlib
 import ipaddress
 import os
 import re
 import tomllib
+from datetime import datetime
 from pathlib import Path
 from typing import Annotated, Literal
-from zoneinfo import ZoneInfo, ZoneInfoNotFoundError
+from zoneinfo import ZoneInfo, ZoneInfoNotFoundError, available_timezones
 
 from pydantic import (
     BaseModel,
@@ -32,21 +35,9 @@ from monitor.stats.design import cue_columns, dummy_name
 ENV_VAR = "CUEWATCH_CONFIG"
 
 # Cue names become column names in the store and keys in reports, so they must be
-# plain identifiers that cannot collide with the store's own columns.
+# plain identifiers that cannot collide with the store's own columns (the store's schema
+# says which those are: monitor.store.schema.reserved_column_names).
 _NAME = re.compile(r"^[A-Za-z][A-Za-z0-9_]{0,62}$")
-RESERVED_COLUMNS = frozenset(
-    {
-        "decision_id",
-        "decided_at",
-        "decision_maker",
-        "team",
-        "judgment",
-        "batch_id",
-        "ingested_at",
-        "source_line",
-        "decided_day",
-    }
-)
 
 
 class ConfigError(UserError):
@@ -58,11 +49,38 @@ class _Strict(BaseModel):
 
 
 def _check_timezone(value: str) -> str:
+    # A name both Python's zoneinfo and the store's SQL engine (DuckDB's ICU) know: the
+    # IANA names zoneinfo lists, less 'localtime' (the machine's own zone under another
+    # name, which DuckDB refuses); file paths such as 'posix/...' load in zoneinfo only.
     try:
         ZoneInfo(value)
     except (ZoneInfoNotFoundError, ValueError) as exc:
         raise ValueError(f"unknown time zone {value!r}") from exc
+    if value not in _iana_zones():
+        raise ValueError(f"unknown time zone {value!r} (use an IANA name such as 'Europe/London')")
     return value
+
+
+@functools.cache
+def _iana_zones() -> frozenset[str]:
+    return frozenset(available_timezones() - {"localtime"})
+
+
+def _column_name(value: str | None) -> str | None:
+    """A column name as files carry it: header names are trimmed when read, so a name
+    that is empty or has spaces at its ends could never be found."""
+    if value is not None and (not value.strip() or value != value.strip()):
+        raise ValueError(f"column name {value!r} is empty or has spaces at its ends")
+    return value
+
+
+def _map_keys(values: dict[str, float]) -> dict[str, float]:
+    """Keys of a text-to-number map (and categorical levels): values are trimmed before
+    they are looked up, so a key that is empty or has spaces at its ends never matches."""
+    for key in values:
+        if not key.strip() or key != key.strip():
+            raise ValueError(f"{key!r} is empty or has spaces at its ends")
+    return values
 
 
 class StoreConfig(_Strict):
@@ -109,6 +127,10 @@ class DecisionsConfig(_Strict):
     timezone: str = "UTC"
 
     _tz = field_validator("timezone")(_check_timezone)
+    _columns = field_validator("id", "decided_at", "decision_maker", "team", "judgment")(
+        _column_name
+    )
+    _keys = field_validator("judgment_values")(_map_keys)
 
     @model_validator(mode="after")
     def _range_ordered(self) -> DecisionsConfig:
@@ -127,6 +149,8 @@ class OutcomesConfig(_Strict):
     timezone: str | None = None
 
     _tz = field_validator("timezone")(lambda v: v if v is None else _check_timezone(v))
+    _columns = field_validator("id", "observed_at", "criterion")(_column_name)
+    _keys = field_validator("criterion_values")(_map_keys)
 
 
 class CueConfig(_Strict):
@@ -138,6 +162,15 @@ class CueConfig(_Strict):
     levels: list[str] = Field(default_factory=list)
     reference: str | None = None
     description: str | None = None
+
+    _column = field_validator("column")(_column_name)
+    _keys = field_validator("values")(_map_keys)
+
+    @field_validator("levels")
+    @classmethod
+    def _levels(cls, value: list[str]) -> list[str]:
+        _map_keys(dict.fromkeys(value, 0.0))
+        return value
 
     @model_validator(mode="after")
     def _consistent(self) -> CueConfig:
@@ -293,10 +326,15 @@ class DashboardConfig(_Strict):
         return value
 
 
+# The encodings DuckDB's CSV reader decodes itself (Python's codec name -> DuckDB's).
+_CSV_ENCODINGS = {"utf-8": "utf-8", "utf-16": "utf-16", "iso8859-1": "latin-1"}
+
+
 class IngestConfig(_Strict):
     delimiter: str = ","
     encoding: str = "utf-8"
-    future_tolerance_hours: float = Field(24.0, ge=0)
+    # At most a century ahead: the horizon is a datetime, which ends at year 9999.
+    future_tolerance_hours: float = Field(24.0, ge=0, le=24 * 366 * 100)
     earliest: str = "1990-01-01"
     # DuckDB's memory limit while ingesting: large files spill to disk beyond it.
     memory_limit: str = "768MB"
@@ -307,6 +345,43 @@ class IngestConfig(_Strict):
         if not re.fullmatch(r"\s*\d+(\.\d+)?\s*(B|KB|MB|GB|KiB|MiB|GiB)\s*", value, re.IGNORECASE):
             raise ValueError("memory_limit must be a size such as '768MB' or '2GB'")
         return value.strip()
+
+    @field_validator("delimiter")
+    @classmethod
+    def _one_character(cls, value: str) -> str:
+        if len(value) != 1 or value in '"\r\n':
+            raise ValueError(
+                f"delimiter must be one character other than a double quote or a line end, "
+                f"not {value!r}"
+            )
+        return value
+
+    @field_validator("encoding")
+    @classmethod
+    def _readable_encoding(cls, value: str) -> str:
+        try:
+            python_name = codecs.lookup(value).name
+        except LookupError:
+            raise ValueError(f"unknown encoding {value!r}; use utf-8, utf-16 or latin-1") from None
+        if python_name not in _CSV_ENCODINGS:
+            raise ValueError(
+                f"encoding {value!r} cannot be read by the CSV reader; use utf-8, utf-16 or latin-1"
+            )
+        return _CSV_ENCODINGS[python_name]
+
+    @field_validator("earliest")
+    @classmethod
+    def _iso_time(cls, value: str) -> str:
+        try:
+            parsed = datetime.fromisoformat(value.strip())
+        except ValueError:
+            raise ValueError(
+                f"earliest must be an ISO 8601 date or time such as 1990-01-01, not {value!r}"
+            ) from None
+        # As written when it is a plain date (the form the messages show), otherwise the
+        # full ISO form the store's SQL reads the same way.
+        text = value.strip()
+        return text if re.fullmatch(r"\d{4}-\d{2}-\d{2}", text) else parsed.isoformat()
 
 
 class Config(_Strict):
@@ -327,13 +402,27 @@ class Config(_Strict):
 
     @model_validator(mode="after")
     def _cross_checks(self) -> Config:
+        # Imported here, not at the top: the store's package imports this module.
+        from monitor.store.schema import reserved_column_names
+
+        seen: dict[str, str] = {}
         for name in self.cues:
             if not _NAME.match(name):
                 raise ValueError(
-                    f"cues.{name}: a cue name must be a letter followed by letters, digits or '_'"
+                    f"cues: {name!r} is not a cue name (a letter followed by at most 62 "
+                    "letters, digits or '_')"
                 )
-            if name.lower() in RESERVED_COLUMNS:
-                raise ValueError(f"cues.{name}: the name is reserved for the store's own columns")
+            if name.lower() in reserved_column_names():
+                raise ValueError(
+                    f"cues.{name}: the store uses the column name {name.lower()!r} itself "
+                    "(decisions, outcomes or their views); give the cue another name"
+                )
+            if name.lower() in seen:
+                raise ValueError(
+                    f"cues.{name}: differs from cue {seen[name.lower()]!r} only in case, "
+                    "and the store's column names ignore case"
+                )
+            seen[name.lower()] = name
         for cue in self.policy.forbidden:
             if cue not in self.cues:
                 raise ValueError(f"policy.forbidden: {cue!r} is not a declared cue")

@@ -12,6 +12,7 @@ the file formats from ``audit_formats`` and the words and HTML from ``audit_repo
 
 from __future__ import annotations
 
+import calendar
 import hashlib
 import json
 import re
@@ -52,9 +53,12 @@ def parse_quarter(text: str) -> tuple[str, date, date]:
     if not m:
         raise ExportUsageError(f"--quarter must look like 2026Q3, not {text!r}.")
     year, q = int(m.group(1)), int(m.group(2))
+    if year < 1000:  # four digits, and room for a window's look-back before the quarter
+        raise ExportUsageError(f"--quarter must lie in the years 1000 to 9999, not {text!r}.")
     first = date(year, 3 * q - 2, 1)
-    nxt = date(year + (q == 4), 1 if q == 4 else 3 * q + 1, 1)
-    return f"{year}Q{q}", first, nxt - timedelta(days=1)
+    # The quarter's last day without stepping into the next year (9999Q4 has none).
+    last = date(year, 3 * q, calendar.monthrange(year, 3 * q)[1])
+    return f"{year}Q{q}", first, last
 
 
 def parse_as_of(text: str | None, timezone: str) -> tuple[datetime, bool]:

@@ -30,6 +30,8 @@ from monitor.ingest.files import (
     IngestUsageError,
     detect_format,
     file_sha256,
+    find_line,
+    mask_lines,
     plan_files,
     present_columns,
 )
@@ -242,19 +244,83 @@ def _stage(
     label: str,
 ) -> int:
     """Read and check one file into temporary tables (outside the write transaction,
-    so a record's ordinal is its rowid).  Returns the number of lines the CSV reader
+    so a record's ordinal is its rowid).  Returns the number of lines the reader
     rejected outright."""
     present = present_columns(con, config, path, fmt)
     checks.require_columns(present, label)
 
     # 1. Read, parse and check every record in one set-based pass, in file order
-    #    (the staged table's rowid is the record's ordinal).
+    #    (the staged table's rowid is the record's ordinal).  A CSV line whose quote
+    #    is never closed swallows the lines after it into one rejected record: that
+    #    line is masked and the file read again (monitor.ingest.files.mask_lines).
+    masked: dict[int, tuple[int, str]] = {}  # reader's line -> (physical line, its text)
+    spans: list[tuple[int, int]] = []
+    scratch: Path | None = None
+    try:
+        source = path
+        for _ in range(MAX_QUOTE_PASSES):
+            _read_and_check(con, config, checks, source, fmt, now, present)
+            rejected_lines = _stage_rejects(con) if fmt != "parquet" else 0
+            runaway = _runaway_quotes(con) if fmt == "csv" and rejected_lines else []
+            if not runaway:
+                break
+            for line, record in runaway:
+                taken = {physical for physical, _ in masked.values()}
+                found = find_line(path, config.ingest.encoding, record, line, taken)
+                if found is None:
+                    raise FileRejected(
+                        f"{label}: line {line} opens a quoted value that is never closed"
+                    )
+                physical, start, length = found
+                masked[line] = (physical, _decoded(path, config.ingest.encoding, start, length))
+                spans.append((start, length))
+            scratch = scratch or Path(tempfile.mkdtemp(prefix="cuewatch-masked-"))
+            source = mask_lines(path, spans, _placeholder(config), scratch / "masked.csv")
+            drop_temp_tables(con, "_checked", "_rejects", "_reject_errors", "_reject_scans")
+        else:
+            first = min(masked)
+            raise FileRejected(
+                f"more than {MAX_QUOTE_PASSES - 1} rounds of quoted values that are "
+                f"never closed, the first on line {first}"
+            )
+    finally:
+        if scratch is not None:
+            shutil.rmtree(scratch, ignore_errors=True)
+    for line, (_, original) in masked.items():
+        con.execute(
+            "UPDATE _rejects SET error_type = 'UNCLOSED QUOTE', csv_line = ? WHERE line = ?",
+            [original, line],
+        )
+    checks.set_line_numbers(fmt, rejected_lines > 0)
+
+    # 2. Duplicates: identical to what is stored (or earlier in the file) -> counted;
+    #    a stored decision with different content -> quarantined, never overwritten.
+    con.execute(classify_duplicates_sql(checks))
+    return rejected_lines
+
+
+# Rounds of masking unclosed quotes before a file is given up (each round reads the file
+# again; a round masks every such line the reader reported, so one or two is usual).
+MAX_QUOTE_PASSES = 20
+
+
+def _read_and_check(
+    con: duckdb.DuckDBPyConnection,
+    config: Config,
+    checks,
+    source: Path,
+    fmt: str,
+    now: datetime,
+    present: list[str],
+) -> None:
+    """Stage ``source`` as ``_checked`` (and the reader's rejected lines as
+    ``_reject_errors``)."""
     tz = checks.timezone
     if tz != config.decisions.timezone:
         con.execute(f"SET TimeZone = {sql_literal(tz)}")
     try:
         horizon = now + timedelta(hours=config.ingest.future_tolerance_hours)
-        reader = reader_sql(config, path, fmt, checks.columns, present)
+        reader = reader_sql(config, source, fmt, checks.columns, present)
         if fmt == "jsonl":
             # Materialise the JSON Lines split first: inlined, the optimiser may run a
             # JSON function on a line that is not JSON before the CASE guards it.
@@ -268,14 +334,28 @@ def _stage(
     finally:
         if tz != config.decisions.timezone:
             con.execute(f"SET TimeZone = {sql_literal(config.decisions.timezone)}")
-    drop_temp_tables(con, "_raw")
-    rejected_lines = _stage_csv_rejects(con) if fmt == "csv" else 0
-    checks.set_line_numbers(fmt, rejected_lines > 0)
+        drop_temp_tables(con, "_raw")
 
-    # 2. Duplicates: identical to what is stored (or earlier in the file) -> counted;
-    #    a stored decision with different content -> quarantined, never overwritten.
-    con.execute(classify_duplicates_sql(checks))
-    return rejected_lines
+
+def _runaway_quotes(con: duckdb.DuckDBPyConnection) -> list[tuple[int, str]]:
+    """(line, text) of the rejected CSV records that run over several lines because a
+    quote was not closed (the reader reports an unquoted value at the place where it
+    finally gave up)."""
+    return con.execute(
+        "SELECT line, csv_line FROM _rejects WHERE error_type = 'UNQUOTED VALUE' "
+        "AND regexp_matches(trim(csv_line, chr(13) || chr(10)), '[\\r\\n]') ORDER BY line"
+    ).fetchall()
+
+
+def _placeholder(config: Config) -> bytes:
+    """A line the CSV reader rejects on its own (one field: no delimiter, no quote)."""
+    return b"^" if config.ingest.delimiter == "~" else b"~"
+
+
+def _decoded(path: Path, encoding: str, start: int, length: int) -> str:
+    with open(path, "rb") as fh:
+        fh.seek(start)
+        return fh.read(length).decode(encoding, "replace")
 
 
 def _write_batch(
@@ -298,12 +378,17 @@ def _write_batch(
     accepted = int(accepted[0]) if accepted else 0
     con.execute(quarantine_sql(checks, batch_id, ingested_at))
     if rejected_lines:
+        encoding = "utf-8" if fmt == "jsonl" else config.ingest.encoding
         con.execute(
             "INSERT INTO quarantine SELECT ?, ?, line, NULL, 'malformed_record', "
-            "'the CSV reader could not split this line: ' || error_message, "
+            "CASE error_type "
+            "WHEN 'INVALID ENCODING' THEN 'the line is not valid ' || ? || ' text' "
+            "WHEN 'UNCLOSED QUOTE' THEN 'a quoted value opened on this line is never closed' "
+            "WHEN 'LINE SIZE OVER MAXIMUM' THEN 'the line is too long: ' || error_message "
+            "ELSE 'the CSV reader could not split this line: ' || error_message END, "
             "CAST(to_json(csv_line) AS VARCHAR), ? "
             "FROM _rejects ORDER BY line",
-            [batch_id, kind, ingested_at],
+            [batch_id, kind, encoding, ingested_at],
         )
     con.execute(mark_dirty_sql(checks, ingested_at))
 
@@ -356,14 +441,21 @@ def _write_batch(
     )
 
 
-def _stage_csv_rejects(con: duckdb.DuckDBPyConnection) -> int:
+def _stage_rejects(con: duckdb.DuckDBPyConnection) -> int:
+    """Stage the reader's rejected lines, one row a line, as ``_rejects`` (line,
+    error_type, error_message, csv_line); returns how many there are."""
     try:
         stage_temp_table(
             con,
             "_rejects",
-            "SELECT line, first(error_message) AS error_message, "
-            "first(csv_line) AS csv_line FROM _reject_errors GROUP BY line",
+            "SELECT line, CAST(first(error_type) AS VARCHAR) AS error_type, "
+            "first(error_message) AS error_message, first(csv_line) AS csv_line "
+            "FROM _reject_errors GROUP BY line",
         )
     except duckdb.CatalogException:
-        empty_temp_table(con, "_rejects", "line BIGINT, error_message VARCHAR, csv_line VARCHAR")
+        empty_temp_table(
+            con,
+            "_rejects",
+            "line BIGINT, error_type VARCHAR, error_message VARCHAR, csv_line VARCHAR",
+        )
     return int(con.execute("SELECT count(*) FROM _rejects").fetchone()[0])

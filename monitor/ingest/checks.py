@@ -61,6 +61,12 @@ def _shown(alias: str) -> str:
     return f"coalesce('''' || {alias} || '''', 'empty')"
 
 
+def _about(c: FileColumn, rest: str) -> str:
+    """SQL for the message "<column>='<value>'<rest>".  The column's name and ``rest``
+    come from the configuration, so both enter as literals, never as SQL text."""
+    return f"{lit(c.source + '=')} || {_shown(c.alias)} || {lit(rest)}"
+
+
 @dataclass
 class Checks:
     """SQL for one kind of file under one configuration."""
@@ -128,23 +134,15 @@ class Checks:
     ) -> list[tuple[str, str, str]]:
         v = _v(c.alias)
         parsed = f"p_{c.alias}"
-        out = [(f"{v} IS NULL", "missing_field", f"'{c.source} is empty'")]
+        out = [(f"{v} IS NULL", "missing_field", lit(f"{c.source} is empty"))]
         if values:
-            keys = ", ".join(lit(k) for k in values)
+            keys = ", ".join(values)
             out.append(
-                (
-                    f"{parsed} IS NULL",
-                    f"{prefix}_not_in_map",
-                    f"'{c.source}=' || {_shown(c.alias)} || ' is not one of {keys.replace(chr(39), '')}'",
-                )
+                (f"{parsed} IS NULL", f"{prefix}_not_in_map", _about(c, f" is not one of {keys}"))
             )
         else:
             out.append(
-                (
-                    f"{parsed} IS NULL",
-                    f"{prefix}_not_numeric",
-                    f"'{c.source}=' || {_shown(c.alias)} || ' is not a number'",
-                )
+                (f"{parsed} IS NULL", f"{prefix}_not_numeric", _about(c, " is not a number"))
             )
         if rng is not None:
             lo, hi = float(rng[0]), float(rng[1])
@@ -152,7 +150,7 @@ class Checks:
                 (
                     f"{parsed} NOT BETWEEN {lo!r} AND {hi!r}",
                     f"{prefix}_out_of_range",
-                    f"'{c.source}=' || {_shown(c.alias)} || ' is outside [{lo:g}, {hi:g}]'",
+                    _about(c, f" is outside [{lo:g}, {hi:g}]"),
                 )
             )
         return out
@@ -160,33 +158,22 @@ class Checks:
     def _cue_checks(self, c: FileColumn, cue: CueConfig) -> list[tuple[str, str, str]]:
         v = _v(c.alias)
         parsed = f"p_{c.alias}"
-        src = c.source.replace("'", "''")
-        out = [(f"{v} IS NULL", "missing_field", f"'{src} is empty'")]
+        out = [(f"{v} IS NULL", "missing_field", lit(f"{c.source} is empty"))]
         if cue.type == "numeric":
-            out.append(
-                (
-                    f"{parsed} IS NULL",
-                    "cue_not_numeric",
-                    f"'{src}=' || {_shown(c.alias)} || ' is not a number'",
-                )
-            )
+            out.append((f"{parsed} IS NULL", "cue_not_numeric", _about(c, " is not a number")))
             if cue.range is not None:
                 lo, hi = float(cue.range[0]), float(cue.range[1])
                 out.append(
                     (
                         f"{parsed} NOT BETWEEN {lo!r} AND {hi!r}",
                         "cue_out_of_range",
-                        f"'{src}=' || {_shown(c.alias)} || ' is outside [{lo:g}, {hi:g}]'",
+                        _about(c, f" is outside [{lo:g}, {hi:g}]"),
                     )
                 )
         elif cue.type == "binary":
             allowed = ", ".join(cue.values) if cue.values else "0, 1"
             out.append(
-                (
-                    f"{parsed} IS NULL",
-                    "binary_not_in_map",
-                    f"'{src}=' || {_shown(c.alias)} || ' is not one of {allowed.replace(chr(39), '')}'",
-                )
+                (f"{parsed} IS NULL", "binary_not_in_map", _about(c, f" is not one of {allowed}"))
             )
         else:
             allowed = ", ".join(cue.levels)
@@ -194,7 +181,7 @@ class Checks:
                 (
                     f"{parsed} IS NULL",
                     "undeclared_level",
-                    f"'{src}=' || {_shown(c.alias)} || ' is not a declared level ({allowed.replace(chr(39), '')})'",
+                    _about(c, f" is not a declared level ({allowed})"),
                 )
             )
         return out
@@ -273,15 +260,15 @@ class Checks:
             if c.role in ("id", "maker", "team"):
                 parsed.append(f"t_{c.alias} AS p_{c.alias}")
                 if c.required:
-                    checks.append((f"{v} IS NULL", "missing_field", f"'{c.source} is empty'"))
+                    checks.append((f"{v} IS NULL", "missing_field", lit(f"{c.source} is empty")))
             elif c.role == "time":
                 parsed.append(f"TRY_CAST({v} AS TIMESTAMPTZ) AS p_{c.alias}")
-                checks.append((f"{v} IS NULL", "missing_field", f"'{c.source} is empty'"))
+                checks.append((f"{v} IS NULL", "missing_field", lit(f"{c.source} is empty")))
                 checks.append(
                     (
                         f"p_{c.alias} IS NULL",
                         "unparseable_timestamp",
-                        f"'{c.source}=' || {_shown(c.alias)} || ' is not a timestamp'",
+                        _about(c, " is not a timestamp"),
                     )
                 )
                 checks.append(
@@ -291,7 +278,7 @@ class Checks:
                         else f"p_{c.alias} > {lit(horizon.isoformat())}::TIMESTAMPTZ "
                         f"OR p_{c.alias} < {lit(earliest)}::TIMESTAMPTZ",
                         "implausible_timestamp",
-                        f"'{c.source}=' || {_shown(c.alias)} || ' is in the future or before {earliest}'",
+                        _about(c, f" is in the future or before {earliest}"),
                     )
                 )
             elif c.role == "value":
@@ -320,14 +307,16 @@ class Checks:
         """SQL for the source line of the staged record whose 0-based ordinal is
         ``ordinal`` (e.g. ``c.rowid``)."""
         fmt = getattr(self, "line_format", "csv")
-        if fmt in ("jsonl", "parquet"):
+        if fmt == "parquet":
             return f"({ordinal} + 1)"
+        first = 1 if fmt == "jsonl" else 2  # the line of record 0 (a CSV header is line 1)
         if not getattr(self, "line_rejects", True):  # the common case: no join per file
-            return f"({ordinal} + 2)"
-        # CSV: the header is line 1; lines the reader rejected shift later records.
+            return f"({ordinal} + {first})"
+        # Lines the reader rejected (CSV lines it could not split, lines of either
+        # format that do not decode) shift later records.
         return (
-            f"({ordinal} + 2 + (SELECT count(*) FROM (SELECT line - row_number() OVER (ORDER BY line) AS t "
-            f"FROM (SELECT DISTINCT line FROM _rejects)) WHERE t <= {ordinal} + 1))"
+            f"({ordinal} + {first} + (SELECT count(*) FROM (SELECT line - row_number() OVER (ORDER BY line) AS t "
+            f"FROM (SELECT DISTINCT line FROM _rejects)) WHERE t <= {ordinal} + {first - 1}))"
         )
 
     # --- messages ----------------------------------------------------------------------
@@ -417,8 +406,13 @@ _LINE_DELIM = "\x1f\x1e\x1d\x1c"
 def reader_sql(
     config: Config, path: Path, fmt: str, columns: list[FileColumn], present: list[str]
 ) -> str:
-    """SELECT staging the needed columns as text, plus is_blank / is_malformed / raw_line."""
-    p = lit(str(path))
+    """SELECT staging the needed columns as text, plus is_blank / is_malformed / raw_line.
+    Lines the reader cannot take (wrong field count, bytes that do not decode, too long)
+    go to the reject table ``_reject_errors``."""
+    p = lit(literal_path(path))
+    rejects = (
+        "store_rejects = true, rejects_table = '_reject_errors', rejects_scan = '_reject_scans'"
+    )
     if fmt == "jsonl":
         keys = ", ".join(
             f"json_extract_string(obj, {lit('$.' + _json_key(c.source))}) AS {c.alias}"
@@ -433,7 +427,7 @@ def reader_sql(
             f"      coalesce(CASE WHEN json_valid(line) THEN json_type(line) = 'OBJECT' END, false)"
             f"        AS is_object"
             f"    FROM read_csv({p}, columns = {{'line': 'VARCHAR'}}, header = false, delim = '{_LINE_DELIM}',"
-            f"      quote = '', escape = '', auto_detect = false)))"
+            f"      quote = '', escape = '', auto_detect = false, {rejects})))"
         )
     sel = []
     for c in columns:
@@ -452,9 +446,20 @@ def reader_sql(
     return (
         f"SELECT {', '.join(sel)}, {flags} FROM read_csv({p}, header = true, auto_detect = false, "
         f"columns = {{{declared}}}, delim = {lit(config.ingest.delimiter)}, quote = '\"', "
-        f"escape = '\"', encoding = {lit(config.ingest.encoding)}, "
-        f"store_rejects = true, rejects_table = '_reject_errors', rejects_scan = '_reject_scans')"
+        f"escape = '\"', encoding = {lit(config.ingest.encoding)}, {rejects})"
     )
+
+
+def literal_path(path: Path) -> str:
+    """``path`` as DuckDB's file readers take it literally.  They expand '*', '?' and
+    '[...]' as a file pattern (a file named 'a*.csv' read every 'a....csv' beside it);
+    each of those characters is escaped as a one-character class ('[*]'), which DuckDB
+    matches to that character only.  Other paths are returned unchanged, so reading a
+    file with an ordinary name costs nothing extra."""
+    text = str(path)
+    if not any(ch in text for ch in "*?["):
+        return text
+    return "".join(f"[{ch}]" if ch in "*?[" else ch for ch in text)
 
 
 def _json_key(name: str) -> str:

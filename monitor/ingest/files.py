@@ -4,16 +4,19 @@ and the columns it offers.  Nothing here writes to the store."""
 
 from __future__ import annotations
 
+import codecs
 import csv
 import hashlib
-from collections.abc import Iterable
+import io
+import shutil
+from collections.abc import Iterable, Iterator
 from pathlib import Path
 
 import duckdb
 
 from monitor.config import Config
 from monitor.errors import UserError
-from monitor.ingest.checks import KINDS, FileRejected
+from monitor.ingest.checks import KINDS, FileRejected, literal_path
 from monitor.store.rules import sql_literal
 
 FORMATS = {
@@ -121,12 +124,13 @@ def present_columns(
     if fmt == "jsonl":
         return []  # keys are looked up per record; a missing key is a missing field
     if fmt == "parquet":
-        rows = con.execute(f"DESCRIBE SELECT * FROM read_parquet({sql_literal(str(path))})")
+        rows = con.execute(
+            f"DESCRIBE SELECT * FROM read_parquet({sql_literal(literal_path(path))})"
+        )
         return [r[0] for r in rows.fetchall()]
     # The header is read here rather than by DuckDB's sniffer, which can give up on a
     # file whose first rows are malformed; DuckDB then reads with fixed settings.
-    with open(path, encoding=_python_encoding(config.ingest.encoding), newline="") as fh:
-        header = next(csv.reader(fh, delimiter=config.ingest.delimiter), None)
+    header = _header_row(path, config.ingest.encoding, config.ingest.delimiter)
     if not header:
         raise FileRejected(f"{path} is empty or has no header row")
     header[0] = header[0].lstrip("\ufeff")
@@ -136,5 +140,117 @@ def present_columns(
     return names
 
 
+# A header longer than this is not a header (DuckDB's own line limit is 2 MB).
+HEADER_LIMIT_BYTES = 1 << 20
+
+
+def _header_row(path: Path, encoding: str, delimiter: str) -> list[str] | None:
+    """The first CSV record of ``path``, decoded with ``encoding``.  Only the header's
+    own bytes are decoded, so a bad byte further down costs its line (the reader
+    quarantines it), not the file; a header that does not decode or has no end within
+    ``HEADER_LIMIT_BYTES`` fails the file with one sentence."""
+    # 'surrogateescape' keeps undecodable bytes visible (as lone surrogates) instead of
+    # failing on a bad byte that lies past the header but inside the bytes read.
+    decoder = codecs.getincrementaldecoder(_python_encoding(encoding))("surrogateescape")
+    text, size = "", 0
+    with open(path, "rb") as fh:
+        while size <= HEADER_LIMIT_BYTES and "\n" not in text and "\r" not in text:
+            chunk = fh.read(1 << 16)
+            size += len(chunk)
+            text += decoder.decode(chunk, final=not chunk)
+            if not chunk:
+                break
+    if size > HEADER_LIMIT_BYTES and "\n" not in text and "\r" not in text:
+        raise FileRejected(f"the header (line 1) is longer than {HEADER_LIMIT_BYTES >> 20} MiB")
+    try:
+        header = next(csv.reader(io.StringIO(text, newline=""), delimiter=delimiter), None)
+    except csv.Error as exc:
+        raise FileRejected(f"the header (line 1) cannot be read: {exc}") from None
+    if header is None:
+        return None
+    if any("\udc80" <= ch <= "\udcff" for h in header for ch in h):
+        raise FileRejected(f"the header (line 1) is not valid {encoding} text")
+    return header
+
+
 def _python_encoding(name: str) -> str:
     return {"utf-8": "utf-8-sig", "utf8": "utf-8-sig"}.get(name.lower(), name)
+
+
+# --- lines whose quote is never closed ---------------------------------------------------
+#
+# A quote that is not closed where its line ends makes the CSV reader take the lines
+# after it, up to the next quote or the end of the file, as one broken record.  Ingest
+# then reads a copy of the file in which that one line is replaced by a line the reader
+# rejects on its own (``mask_lines``), so every later line is read as the record it is
+# and the broken line alone is quarantined.  Only a file that has such a line pays.
+
+
+def _line_end(path: Path) -> bytes:
+    """b'\\n' (also for CRLF files), or b'\\r' for a file whose lines end in CR alone."""
+    with open(path, "rb") as fh:
+        head = fh.read(1 << 16)
+    return b"\r" if b"\n" not in head and b"\r" in head else b"\n"
+
+
+def _physical_lines(path: Path, end: bytes) -> Iterator[tuple[int, int, bytes]]:
+    """(1-based line number, byte offset, bytes without the line end) of every line."""
+    number, offset, rest = 0, 0, b""
+    with open(path, "rb") as fh:
+        for chunk in iter(lambda: fh.read(1 << 20), b""):
+            rest += chunk
+            parts = rest.split(end)
+            rest = parts.pop()
+            for part in parts:
+                number += 1
+                yield number, offset, part
+                offset += len(part) + len(end)
+    if rest:
+        yield number + 1, offset, rest
+
+
+def find_line(
+    path: Path, encoding: str, record_text: str, first_line: int, taken: set[int]
+) -> tuple[int, int, int] | None:
+    """Where the record the CSV reader rejected as ``record_text`` starts: (line number,
+    byte offset, byte length without the line end) of the first physical line at or after
+    ``first_line`` (the reader's count, which leaves out line ends inside quotes, so the
+    physical line is never earlier) that is not in ``taken`` and reads as the record's
+    first line.  None when no line matches or the encoding is not ASCII-compatible."""
+    if codecs.lookup(encoding).name.startswith("utf-16"):
+        return None
+    end = _line_end(path)
+    body = record_text.lstrip("\r\n")
+    want = body.split(end.decode())[0].removesuffix("\r")
+    for number, offset, raw in _physical_lines(path, end):
+        if number < first_line or number in taken:
+            continue
+        line = raw.removesuffix(b"\r") if end == b"\n" else raw
+        if line.decode(encoding, "replace") == want:
+            return number, offset, len(line)
+    return None
+
+
+def mask_lines(
+    path: Path, spans: Iterable[tuple[int, int]], placeholder: bytes, target: Path
+) -> Path:
+    """Copy ``path`` to ``target`` with each (byte offset, length) span replaced by
+    ``placeholder``; line ends and every other byte stay as they are."""
+    with open(path, "rb") as src, open(target, "wb") as out:
+        pos = 0
+        for start, length in sorted(spans):
+            _copy_bytes(src, out, start - pos)
+            out.write(placeholder)
+            src.seek(start + length)
+            pos = start + length
+        shutil.copyfileobj(src, out, 1 << 20)
+    return target
+
+
+def _copy_bytes(src, out, count: int) -> None:
+    while count > 0:
+        chunk = src.read(min(count, 1 << 20))
+        if not chunk:
+            return
+        out.write(chunk)
+        count -= len(chunk)

@@ -42,6 +42,15 @@ class StoreBusy(UserError):
     """The store is held by another process for longer than we are willing to wait."""
 
 
+class StoreUnusable(UserError):
+    """``store.path`` cannot hold or open a store (a folder, under a file, not writable,
+    damaged or not a DuckDB file)."""
+
+
+def _unusable(path: Path | str, reason: str) -> StoreUnusable:
+    return StoreUnusable(f"the store {path} (store.path) {reason}.")
+
+
 class Store:
     """Access to one DuckDB store file under the connection rules above."""
 
@@ -72,7 +81,11 @@ class Store:
         # DuckDB creates the store, its WAL and spill files itself: the umask gives them
         # (and the lock and the store's folder) the configured mode.
         with owner_only(self.config):
-            self.path.parent.mkdir(parents=True, exist_ok=True)
+            self._check_path()
+            try:
+                self.path.parent.mkdir(parents=True, exist_ok=True)
+            except OSError as exc:
+                raise _unusable(self.path, f"cannot be created: {exc.strerror}") from None
             with _file_lock(self.lock_path, timeout):
                 con = _connect_with_retry(
                     str(self.path), read_only=False, timeout_s=max(timeout, 5)
@@ -86,6 +99,7 @@ class Store:
     @contextlib.contextmanager
     def reader(self, retry_s: float | None = None) -> Iterator[duckdb.DuckDBPyConnection]:
         """A short-lived read-only connection; retries while a writer holds the file."""
+        self._check_path()
         if not self.path.exists():
             raise StoreMismatch(
                 f"the store {self.path} does not exist yet: run 'cuewatch init' first."
@@ -103,6 +117,16 @@ class Store:
         with self.reader() as con:
             return con.execute(sql, params or []).df()
 
+    def _check_path(self) -> None:
+        """Raise StoreUnusable when ``store.path`` is a folder or lies under a file."""
+        if self.path.is_dir():
+            raise _unusable(self.path, "is a folder, not a file")
+        for folder in self.path.parents:
+            if folder.exists():
+                if not folder.is_dir():
+                    raise _unusable(self.path, f"lies under {folder}, which is a file")
+                break
+
     # --- schema -----------------------------------------------------------------------
 
     def init(self) -> dict:
@@ -113,6 +137,7 @@ class Store:
         "schema_version": int}.
         """
         created = not self.path.exists()
+        self._check_path()
         apply_mode(self.config, *self.own_files())
         with self.writer() as con:
             con.execute("BEGIN")
@@ -175,8 +200,11 @@ def set_fact(con: duckdb.DuckDBPyConnection, key: str, value: str) -> None:
 
 @contextlib.contextmanager
 def _file_lock(path: Path, timeout_s: float) -> Iterator[None]:
-    path.parent.mkdir(parents=True, exist_ok=True)
-    fd = os.open(path, os.O_RDWR | os.O_CREAT, 0o666)  # the umask decides
+    try:
+        path.parent.mkdir(parents=True, exist_ok=True)
+        fd = os.open(path, os.O_RDWR | os.O_CREAT, 0o666)  # the umask decides
+    except OSError as exc:
+        raise _unusable(path, f"cannot have its lock file: {exc.strerror}") from None
     try:
         deadline = time.monotonic() + timeout_s
         delay = 0.05
@@ -231,9 +259,16 @@ def _connect_with_retry(path: str, read_only: bool, timeout_s: float) -> duckdb.
                         f"the store {path} is busy ({who} has it open); "
                         f"gave up after {timeout_s:g} s."
                     ) from None
-                raise
+                raise _unusable(path, _cannot_open(exc)) from None
             time.sleep(delay)
             delay = min(delay * 2, 0.5)
+        except duckdb.Error as exc:  # damaged, or some other file than a DuckDB store
+            raise _unusable(path, _cannot_open(exc)) from None
+
+
+def _cannot_open(exc: Exception) -> str:
+    first = (str(exc).strip().splitlines() or [type(exc).__name__])[0].rstrip(".")
+    return f"cannot be opened as a DuckDB store ({first})"
 
 
 def describe_init(result: dict) -> str:

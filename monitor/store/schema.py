@@ -10,10 +10,13 @@ too, so that no module outside ``monitor.store`` writes DDL.
 
 from __future__ import annotations
 
+import functools
+from collections.abc import Mapping
+from typing import Any, Protocol
+
 import duckdb
 
 from monitor import __version__
-from monitor.config import Config
 from monitor.errors import UserError
 from monitor.store.rules import current_outcome_rows_sql, quote_ident, utc_now
 
@@ -310,7 +313,16 @@ def decision_columns(con: duckdb.DuckDBPyConnection) -> dict[str, str]:
     )
 
 
-def sync_cue_columns(con: duckdb.DuckDBPyConnection, config: Config) -> list[str]:
+class CueSource(Protocol):
+    """What the schema needs of a configuration: its cues by name (each with a
+    ``type``).  A protocol rather than ``monitor.config.Config`` itself, because the
+    configuration asks the schema which names are reserved (``reserved_column_names``)."""
+
+    @property
+    def cues(self) -> Mapping[str, Any]: ...
+
+
+def sync_cue_columns(con: duckdb.DuckDBPyConnection, config: CueSource) -> list[str]:
     """Add a ``decisions`` column for every newly configured cue; returns their names.
 
     A cue whose configured type no longer matches its stored column raises
@@ -331,7 +343,7 @@ def sync_cue_columns(con: duckdb.DuckDBPyConnection, config: Config) -> list[str
     return added
 
 
-def check_ready(con: duckdb.DuckDBPyConnection, config: Config) -> str | None:
+def check_ready(con: duckdb.DuckDBPyConnection, config: CueSource) -> str | None:
     """Why the store cannot be used with ``config`` yet (None when it can): the rest of
     a sentence that starts with the store's path."""
     if current_version(con) < latest_version():
@@ -340,6 +352,37 @@ def check_ready(con: duckdb.DuckDBPyConnection, config: Config) -> str | None:
     if missing:
         return f"has no column for cue(s) {', '.join(missing)}: run 'cuewatch init'."
     return None
+
+
+# Tables that share a name space with the cue columns: cues are columns of `decisions`,
+# and the views put `outcomes`' columns beside them.
+_CUE_NEIGHBOURS = ("decisions", "outcomes")
+
+
+@functools.cache
+def reserved_column_names() -> frozenset[str]:
+    """The names a cue cannot take, lower-case (DuckDB's identifiers ignore case): every
+    column of ``decisions``, ``outcomes`` and every view, read from the migrations
+    themselves (run on an empty in-memory database, ~0.1 s once per process), so a
+    column a later migration adds is reserved without a second list to keep."""
+    con = duckdb.connect(":memory:", config={"threads": 1})
+    try:
+        con.execute("BEGIN")
+        apply_migrations(con)
+        con.execute("COMMIT")
+        views = [
+            r[0]
+            for r in con.execute(
+                "SELECT view_name FROM duckdb_views() WHERE NOT internal"
+            ).fetchall()
+        ]
+        names: set[str] = set()
+        for table in (*_CUE_NEIGHBOURS, *views):
+            described = con.execute(f"SELECT * FROM {quote_ident(table)} LIMIT 0").description
+            names.update(col[0].lower() for col in described)
+    finally:
+        con.close()
+    return frozenset(names)
 
 
 # --- tables rebuilt with the statistics layout -------------------------------------------
