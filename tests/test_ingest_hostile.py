@@ -353,7 +353,7 @@ def _accounted(config: Path) -> tuple[list[int], list[tuple[int, str]]]:
     return stored, held
 
 
-@pytest.mark.parametrize("end", ["\n", "\r\n"])
+@pytest.mark.parametrize("end", ["\n", "\r\n", "\r"])
 def test_an_unterminated_quote_loses_only_its_own_line(config_path, tmp_path, end):
     lines = _csv_lines([decision_row(i) for i in range(1, 5)])
     lines[2] = lines[2].replace(",h2,", ',"h2,')  # line 3 opens a quote it never closes
@@ -381,6 +381,37 @@ def test_several_unterminated_quotes_each_lose_their_own_line(config_path, tmp_p
     stored, held = _accounted(config_path)
     assert stored == [2, 4, 5, 8, 9]
     assert held == [(3, "malformed_record"), (6, "malformed_record"), (7, "malformed_record")]
+
+
+def test_lines_that_each_open_a_quote_are_each_quarantined(config_path, tmp_path):
+    # Each line opens a quote that the next line's quote closes in the wrong place, so
+    # masking uncovers more of them round after round.
+    lines = _csv_lines([decision_row(i) for i in range(1, 40)])
+    for k in range(2, 40):
+        lines[k] = lines[k].replace(",t", ',"t', 1)
+    data = _write_lines(tmp_path / "d.csv", lines)
+    doc = ingest_json(config_path, "--kind", "decisions", str(data))
+    f = doc["files"][0]
+    assert (f["rows_read"], f["accepted"], f["quarantined"]) == (39, 1, 38), f
+    stored, held = _accounted(config_path)
+    assert stored == [2] and [line for line, _ in held] == list(range(3, 41))
+
+
+def test_past_the_bound_on_rounds_the_file_fails_naming_the_first_line(
+    config_path, tmp_path, monkeypatch
+):
+    from monitor.config import load_config
+    from monitor.ingest import batches
+
+    monkeypatch.setattr(batches, "MAX_QUOTE_PASSES", 2)
+    lines = _csv_lines([decision_row(i) for i in range(1, 40)])
+    for k in range(2, 40):
+        lines[k] = lines[k].replace(",t", ',"t', 1)
+    data = _write_lines(tmp_path / "d.csv", lines)
+    summary = batches.ingest(load_config(config_path), [str(data)], kind="decisions")
+    (f,) = summary.files
+    assert f.status == "failed" and "line 3" in f.message and "never closed" in f.message, f
+    assert query(config_path, "SELECT count(*) FROM decisions") == [(0,)]
 
 
 def test_a_quote_closed_lines_later_in_the_wrong_place_loses_only_its_own_line(
