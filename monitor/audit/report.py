@@ -24,7 +24,7 @@ MAX_HTML_ROWS = 400  # per table; the CSV/XLSX files carry every row
 def methodology_text(config: Config, quarter: str, as_of: str, *, compare: bool = False) -> str:
     """Plain-text methodology and cautions for one pack (the figures' meaning, their
     computation, their limits and the legal caution), with this configuration's values."""
-    p, w = config.policy, config.windows
+    w = config.windows
     binary = "yes (0/1)" if config.judgment_is_binary else "no"
     parts = [
         f"cuewatch audit pack - quarter {quarter}, as of {as_of}",
@@ -62,8 +62,13 @@ def methodology_text(config: Config, quarter: str, as_of: str, *, compare: bool 
         "  the full judge model; indirect = disparity - direct is the part carried by",
         "  permitted cues that differ between the groups (proxies; per proxy in",
         "  forbidden_proxy_parts). q_value: Benjamini-Hochberg adjusted p-value of the",
-        "  direct weight across every decision-maker x forbidden cue level in this pack.",
-        f"  flagged = |std_weight| >= {p.tolerance:g} (policy tolerance) and q_value <= {p.fdr:g}.",
+        "  direct weight across every decision-maker x forbidden cue level in this pack",
+        "  (indirect_q_value: the same for the indirect part, a family of its own).",
+        *_flag_rule_lines(config),
+        "  ci_low / ci_high stand around std_weight (standardised scale); direct_ci_low /",
+        "  direct_ci_high around the raw direct weight; indirect_ci_* around std_indirect.",
+        "  The indirect part's standard error counts the proxies' imbalance as estimated",
+        "  (delta method, Sobel 1982), not as fixed.",
         f"- window_summary: the rolling {w.length_days}-day windows (every {w.step_days} days)",
         "  ending inside the quarter, recomputed from the same rows (min/median/max).",
         f"- A figure needs at least {w.min_rows} rows and more rows than cues + 1; a cue that",
@@ -408,3 +413,26 @@ def write_html(tables: Sequence[Table], path: Path, manifest: dict, method: str)
     ]
     path.write_text("\n".join(parts), encoding="utf-8")
     return path
+
+
+def _flag_rule_lines(config: Config) -> list[str]:
+    """How flagged / proxy_flagged are decided, in this configuration's numbers."""
+    from monitor.stats.monitoring import forbidden_cue_limit
+
+    p, w = config.policy, config.windows
+    proxy_tol = p.proxy_tolerance or p.tolerance
+    limit = forbidden_cue_limit(p, w)
+    if limit is None:
+        return [
+            f"  flagged = |std_weight| >= {p.tolerance:g} and q_value <= {p.fdr:g};",
+            f"  proxy_flagged = |std_indirect| >= {proxy_tol:g} and indirect_q_value <= {p.fdr:g}.",
+        ]
+    return [
+        f"  flagged = |std_weight| >= {p.tolerance:g} and p_value <= {limit.p_limit:.3g};",
+        f"  proxy_flagged = |std_indirect| >= {proxy_tol:g} and indirect_p <= {limit.p_limit:.3g}.",
+        "  The p limit is the weekly alerts' control limit: the level at which an innocent",
+        f"  series of {w.length_days}-day windows looked at every {w.step_days} days opens at",
+        f"  most {p.false_alerts_per_100_years:g} alerts per 100 years (rolling windows overlap,",
+        "  so the weekly looks are not independent tests; see the operating characteristics",
+        "  below). The quarter is one look at a window of its own.",
+    ]
