@@ -19,8 +19,15 @@ from helpers.references import (
     LONGLEY_CERTIFIED_SE,
 )
 
-from monitor.stats.lens import LensFits, fit_lens, fit_lens_rows, replace_rows, stack
-from monitor.stats.moments import Moments, merge, moments_from_rows
+from monitor.stats.lens import (
+    LensFits,
+    fit_lens,
+    fit_lens_or_rows,
+    fit_lens_rows,
+    replace_rows,
+    stack,
+)
+from monitor.stats.moments import Moments, group_sums, merge, moments_from_rows
 
 NAMES3 = ("a", "b", "c")
 
@@ -394,3 +401,129 @@ def test_shape_mismatch_is_a_bug_not_a_degenerate_window():
     empty = Moments(np.zeros(1), np.zeros((1, 3)), np.zeros((1, 3, 3)))
     with pytest.raises(ValueError):
         fit_lens(empty, None, NAMES3)
+
+
+# --- edges found by a mutation run (`make mutate`) ---------------------------------------
+
+
+def test_merge_with_empty_sets_is_the_identity_and_two_empties_stay_empty():
+    # Moments' contract: n = 0 has zero mean and co-moment; merging with it changes nothing.
+    # Reference by hand: one row (2, -1, 7) has mean (2, -1, 7) and zero co-moment.
+    empty = Moments(np.zeros(1), np.zeros((1, 3)), np.zeros((1, 3, 3)))
+    one = Moments(np.ones(1), np.array([[2.0, -1.0, 7.0]]), np.zeros((1, 3, 3)))
+    for merged in (merge(empty, one), merge(one, empty)):
+        np.testing.assert_array_equal(merged.n, [1.0])
+        np.testing.assert_array_equal(merged.mean, [[2.0, -1.0, 7.0]])
+        np.testing.assert_array_equal(merged.comoment, np.zeros((1, 3, 3)))
+    with np.errstate(all="raise"):  # no 0/0 on the way
+        nothing = merge(empty, empty)
+    np.testing.assert_array_equal(nothing.n, [0.0])
+    np.testing.assert_array_equal(nothing.mean, np.zeros((1, 3)))
+    np.testing.assert_array_equal(nothing.comoment, np.zeros((1, 3, 3)))
+
+
+def test_stack_of_one_window_and_mismatched_design_columns():
+    rng = np.random.default_rng(5)
+    x, ys, ye = _window(rng, 80)
+    fit = fit_lens_rows(x, ys, ye, NAMES3)
+    alone = stack([fit])
+    np.testing.assert_array_equal(alone.weights, fit.weights)
+    np.testing.assert_array_equal(alone.R_s, fit.R_s)
+    other = fit_lens_rows(x[:, :2], ys, ye, ("a", "b"))
+    with pytest.raises(ValueError, match="different design columns"):
+        stack([fit, other])
+    with pytest.raises(ValueError, match="different design columns"):
+        replace_rows(fit, np.array([0]), other)
+
+
+def test_window_whose_cues_are_all_constant_fits_the_intercept_only():
+    # Every cue constant: nothing to weigh, R_s = 0 (the intercept-only model explains
+    # nothing), and achievement is still the plain correlation (numpy corrcoef).
+    rng = np.random.default_rng(9)
+    n = 50
+    x = np.column_stack([np.full(n, 2.0), np.full(n, 5.0)])
+    ys, ye = rng.normal(size=n), rng.normal(size=n)
+    for fit in (
+        fit_lens_rows(x, ys, ye, ("a", "b")),
+        fit_lens(*_moments(x, ys, ye), ("a", "b")),
+    ):
+        assert not fit.estimable.any() and np.isnan(fit.weights).all()
+        np.testing.assert_allclose(fit.R_s, [0.0], atol=1e-12)
+        np.testing.assert_allclose(fit.r_a, [np.corrcoef(ys, ye)[0, 1]], rtol=1e-12)
+
+
+def _near_collinear_window(rng, n):
+    """A window whose third cue is the sum of the first two up to 1e-5 noise: the cue
+    correlation matrix's condition number lies between the raw-refit and the collinear
+    limits."""
+    x12 = rng.normal(size=(n, 2))
+    x = np.column_stack([x12, x12.sum(axis=1) + 1e-5 * rng.normal(size=n)])
+    ys = x @ np.array([1.0, -0.5, 0.25]) + rng.normal(size=n)
+    ye = x12 @ np.array([0.5, 0.5]) + 0.5 * ys + rng.normal(size=n)
+    return x, ys, ye
+
+
+def test_raw_refit_replaces_exactly_the_poorly_conditioned_windows():
+    rng = np.random.default_rng(21)
+    windows = [_window(rng, 90, linked_share=1.0), _near_collinear_window(rng, 90)]
+    x, ys, ye = _near_collinear_window(rng, 90)
+    ye[30:] = np.nan  # 30 linked rows < min_rows: environment figures stay "too few"
+    windows.append((x, ys, ye))
+    x, ys, ye = _window(rng, 90, linked_share=1.0)
+    ye[30:] = np.nan  # well conditioned, 30 linked rows: no refit, still "too few"
+    windows.append((x, ys, ye))
+    parts = [_moments(*w) for w in windows]
+    all_rows = _stack_moments([p[0] for p in parts])
+    linked = _stack_moments([p[1] for p in parts])
+    fits, redo = fit_lens_or_rows(
+        all_rows, linked, NAMES3, min_rows=50, rows_of=lambda i: windows[i]
+    )
+    np.testing.assert_array_equal(redo, [1, 2])
+    # Source: statsmodels OLS (pinv-based) on the raw rows of the refitted window.
+    x, ys, ye = windows[1]
+    judge = sm.OLS(ys, sm.add_constant(x)).fit()
+    env = sm.OLS(ye, sm.add_constant(x)).fit()
+    np.testing.assert_allclose(fits.weights[1], judge.params[1:], rtol=1e-6)
+    np.testing.assert_allclose(fits.R_s[1], np.sqrt(judge.rsquared), rtol=1e-9)
+    np.testing.assert_allclose(fits.R_e[1], np.sqrt(env.rsquared), rtol=1e-9)
+    np.testing.assert_allclose(fits.r_a[1], np.corrcoef(ys, ye)[0, 1], rtol=1e-12)
+    # The well-conditioned window keeps its moment fit (statsmodels again).
+    x0, ys0, ye0 = windows[0]
+    np.testing.assert_allclose(
+        fits.weights[0], sm.OLS(ys0, sm.add_constant(x0)).fit().params[1:], rtol=1e-9
+    )
+    env0 = sm.OLS(ye0, sm.add_constant(x0)).fit()
+    np.testing.assert_allclose(fits.R_e[0], np.sqrt(env0.rsquared), rtol=1e-9)
+    assert "too few" in fits.reason[3] and np.isnan(fits.R_e[3])
+    # min_rows holds on the refit path too: 30 linked rows < 50.
+    assert "too few" in fits.reason[2] and np.isnan(fits.R_e[2]) and np.isnan(fits.r_a[2])
+    x2, ys2, _ = windows[2]
+    np.testing.assert_allclose(
+        fits.R_s[2], np.sqrt(sm.OLS(ys2, sm.add_constant(x2)).fit().rsquared), rtol=1e-9
+    )
+
+
+def test_group_sums_of_a_group_do_not_depend_on_the_other_groups():
+    # The refit's promise (monitor.stats.moments.group_sums docstring): a group's sums run
+    # over its members in their given order, so adding other groups' buckets around them
+    # leaves its statistics identical to the last bit.
+    rng = np.random.default_rng(3)
+    members = 400
+    scale = 10.0 ** rng.integers(-3, 6, size=(members, 1))
+    mine = Moments(
+        rng.integers(1, 20, size=members).astype(float),
+        rng.normal(size=(members, 2)) * scale,
+        np.repeat(np.eye(2)[None], members, axis=0) * scale[:, :, None] ** 2,
+    )
+    alone = group_sums(mine, np.zeros(members, dtype=np.int64), 1)
+    others = 3 * members
+    mixed = _stack_moments([mine, mine.take(rng.integers(0, members, size=others))])
+    groups = np.concatenate([np.zeros(members, np.int64), rng.integers(1, 50, size=others)])
+    shuffle = rng.permutation(len(groups))
+    # keep group 0's members in their given order while interleaving the rest
+    zero = np.flatnonzero(groups[shuffle] == 0)
+    shuffle[zero] = np.arange(members)
+    together = group_sums(mixed.take(shuffle), groups[shuffle], 50)
+    np.testing.assert_array_equal(together.n[0], alone.n[0])
+    np.testing.assert_array_equal(together.mean[0], alone.mean[0])
+    np.testing.assert_array_equal(together.comoment[0], alone.comoment[0])

@@ -6,6 +6,7 @@ window on the raw rows, so the policy maths is checked without trusting monitor.
 
 from __future__ import annotations
 
+import warnings
 from types import SimpleNamespace
 
 import hypothesis.strategies as st
@@ -14,6 +15,7 @@ import pandas as pd
 import pytest
 import statsmodels.api as sm
 from hypothesis import given, settings
+from scipy import stats
 from statsmodels.stats.multitest import multipletests
 
 from monitor.stats.design import cue_columns
@@ -574,3 +576,79 @@ def test_one_noisy_window_neither_opens_nor_closes():
     assert episodes([flag, clear, flag], 1) == [Episode(0, 1), Episode(2, None)]
     with pytest.raises(ValueError):
         episodes([flag], 0)
+
+
+# --- floors at their edges (added after a mutation run: `make mutate`) -------------------
+
+
+def test_below_floor_edges_are_inclusive_for_rows_and_strict_for_the_value():
+    # The docstring's words: "at least min_n rows" is assessable, "below floor" flags.
+    check = below_floor(
+        np.array([0.5, 0.4999, 0.4999]), np.array([40, 40, 39]), floor=0.5, min_n=40
+    )
+    np.testing.assert_array_equal(check.assessable, [True, True, False])
+    np.testing.assert_array_equal(check.flagged, [False, True, False])
+
+
+def test_achievement_interval_is_the_fisher_interval_of_pearsons_r():
+    # Source: scipy.stats.pearsonr(...).confidence_interval(), the Fisher z interval
+    # tanh(atanh(r) -+ z_{0.975} / sqrt(n - 3)); n = 4 is the smallest n it is defined for.
+    rng = np.random.default_rng(11)
+    sizes = [4, 30, 200, 200]
+    r, low, high = [], [], []
+    for n, slope in zip(sizes, [0.5, 0.5, 0.0, 1.0], strict=True):
+        ys = rng.normal(size=n)
+        ye = slope * ys + rng.normal(size=n)
+        res = stats.pearsonr(ys, ye)
+        ci = res.confidence_interval(confidence_level=0.95)
+        r.append(res.statistic)
+        low.append(ci.low)
+        high.append(ci.high)
+    fits = SimpleNamespace(r_a=np.array(r), n_linked=np.array(sizes))
+    check = achievement_floor(fits, floor=0.3, min_linked=4, z=stats.norm.ppf(0.975))
+    np.testing.assert_allclose(check.estimate, r, rtol=1e-12)
+    np.testing.assert_allclose(check.ci_low, low, rtol=1e-9)
+    np.testing.assert_allclose(check.ci_high, high, rtol=1e-9)
+    np.testing.assert_array_equal(check.assessable, [True, True, True, True])
+    # Flagged exactly where the whole interval lies below the floor.
+    np.testing.assert_array_equal(check.flagged, np.array(high) < 0.3)
+    assert check.flagged[2] and not check.flagged[3]
+
+
+def test_achievement_floor_needs_min_linked_and_more_than_three_outcomes():
+    # n_linked = 3 leaves the Fisher interval undefined (sqrt(n - 3) = 0): not assessable,
+    # whatever min_linked says; n = min_linked is enough ("at least").
+    fits = SimpleNamespace(
+        r_a=np.array([-0.9, -0.9, -0.9, -0.9, np.nan]), n_linked=np.array([3, 4, 49, 50, 80])
+    )
+    check = achievement_floor(fits, floor=0.0, min_linked=4, z=1.96)
+    np.testing.assert_array_equal(check.assessable, [False, True, True, True, False])
+    strict = achievement_floor(fits, floor=0.0, min_linked=50, z=1.96)
+    np.testing.assert_array_equal(strict.assessable, [False, False, False, True, False])
+    np.testing.assert_array_equal(strict.flagged, [False, False, False, True, False])
+
+
+def test_floor_checks_on_empty_or_undefined_windows_warn_about_nothing():
+    # Windows with no outcomes, no rows or an undefined R_s are routine in a nightly run:
+    # they are "not assessable", with no numpy RuntimeWarning in the logs.
+    fits = SimpleNamespace(
+        r_a=np.array([np.nan, 0.4, 0.4, 0.2]),
+        n_linked=np.array([0.0, 2.0, 3.0, 60.0]),
+        R_s=np.array([np.nan, 0.5, 1.0, 0.3]),
+        n=np.array([0.0, 3.0, 5.0, 60.0]),
+        df_resid=np.array([np.nan, 0.0, 2.0, 57.0]),
+    )
+    with warnings.catch_warnings():
+        warnings.simplefilter("error")
+        ach = achievement_floor(fits, floor=0.5, min_linked=1, z=1.96)
+        cons = consistency_floor(fits, floor=0.5, min_rows=1, z=1.96)
+        plain = below_floor(fits.r_a, fits.n_linked, floor=0.5, min_n=1)
+    np.testing.assert_array_equal(ach.assessable, [False, False, False, True])
+    assert not cons.assessable[0] and not cons.assessable[1] and cons.assessable[3]
+    np.testing.assert_array_equal(plain.assessable, [False, True, True, True])
+
+
+def test_window_states_refuse_series_of_different_lengths():
+    # A flag without its assessability (or the reverse) is a caller's bug, not a window.
+    with pytest.raises(ValueError):
+        window_states(np.array([True, False]), np.array([True]))
