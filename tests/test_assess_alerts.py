@@ -25,7 +25,8 @@ import numpy as np
 import pandas as pd
 import pytest
 from aiosmtpd.controller import Controller
-from conftest import make_config, run_cli, text
+from helpers.cli import run_cli, text
+from helpers.configs import make_config
 from helpers.demo_store import build_demo_store
 from helpers.local_servers import SmtpInbox, WebhookReceiver, free_port
 

@@ -43,8 +43,10 @@ import numpy as np
 import pandas as pd
 import pytest
 from aiosmtpd.controller import Controller
-from conftest import REPO, make_config, query, run_cli, text
+from helpers.cli import run_cli, text
+from helpers.configs import REPO, make_config
 from helpers.local_servers import SmtpInbox, WebhookReceiver, free_port
+from helpers.store_rows import query
 
 from monitor.assess.alerts import _reconcile, acknowledge, assess
 from monitor.assess.findings import FINDING_COLUMNS

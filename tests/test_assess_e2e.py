@@ -19,7 +19,7 @@ import numpy as np
 import pandas as pd
 import pytest
 import statsmodels.api as sm
-from conftest import DECISION_COLUMNS, OUTCOME_COLUMNS, make_config
+from helpers.configs import DECISION_COLUMNS, OUTCOME_COLUMNS, make_config
 from helpers.store_rows import design_frame, query_store
 from scipy import stats
 

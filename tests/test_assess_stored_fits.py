@@ -9,7 +9,7 @@ from datetime import date, timedelta
 import numpy as np
 import pandas as pd
 import statsmodels.api as sm
-from conftest import write_config
+from helpers.configs import write_config
 
 from monitor.assess.findings import evaluate, forbidden_findings, load_windows
 from monitor.config import load_config

@@ -10,7 +10,7 @@ from pathlib import Path
 
 import pandas as pd
 import pytest
-from conftest import REPO
+from helpers.configs import REPO
 
 from monitor.audit.pack import export
 from monitor.config import load_config

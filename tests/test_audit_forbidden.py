@@ -13,7 +13,7 @@ from __future__ import annotations
 import numpy as np
 import pandas as pd
 import pytest
-from conftest import REPO
+from helpers.configs import REPO
 from scipy import stats
 from statsmodels.stats.multitest import multipletests
 

@@ -19,7 +19,7 @@ import numpy as np
 import pandas as pd
 import pyarrow.parquet as pq
 import pytest
-from conftest import REPO, write_config
+from helpers.configs import REPO, write_config
 
 from monitor.assess.alerts import acknowledge, assess, list_alerts
 from monitor.audit.pack import ExportUsageError, export

@@ -11,7 +11,8 @@ import json
 from pathlib import Path
 
 import pytest
-from conftest import base_config, make_config, run_cli, text, write_config
+from helpers.cli import run_cli, text
+from helpers.configs import base_config, make_config, write_config
 
 from monitor.config import ConfigError, load_config
 

@@ -11,16 +11,10 @@ from pathlib import Path
 import duckdb
 import pytest
 from click.testing import CliRunner
-from conftest import (
-    base_config,
-    decision_row,
-    ingest_json,
-    make_config,
-    query,
-    run_cli,
-    text,
-    write_csv,
-)
+from helpers.cli import ingest_json, run_cli, text
+from helpers.configs import base_config, make_config
+from helpers.files import decision_row, write_csv
+from helpers.store_rows import query
 
 from monitor.cli import main
 

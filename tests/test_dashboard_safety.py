@@ -194,7 +194,7 @@ def test_a_configured_secret_that_is_not_set_switches_acknowledging_off(
 
 
 def test_cli_acks_record_the_os_user_too(hostile, tmp_path):
-    from conftest import run_cli, text
+    from helpers.cli import run_cli, text
 
     cfg, alert_id = copy_of(hostile, tmp_path)
     proc = run_cli(cfg, "ack", str(alert_id), "--by", "auditor", "--note", "from the shell")
@@ -204,7 +204,7 @@ def test_cli_acks_record_the_os_user_too(hostile, tmp_path):
 
 
 def test_bad_ack_secret_env_is_a_configuration_error(tmp_path):
-    from conftest import make_config
+    from helpers.configs import make_config
 
     from monitor.config import ConfigError
 

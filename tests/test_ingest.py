@@ -9,20 +9,10 @@ from __future__ import annotations
 import json
 
 import pytest
-from conftest import (
-    DECISION_COLUMNS,
-    OUTCOME_COLUMNS,
-    decision_row,
-    ingest_json,
-    make_config,
-    outcome_row,
-    query,
-    run_cli,
-    text,
-    write_csv,
-    write_jsonl,
-    write_parquet,
-)
+from helpers.cli import ingest_json, run_cli, text
+from helpers.configs import DECISION_COLUMNS, OUTCOME_COLUMNS, make_config
+from helpers.files import decision_row, outcome_row, write_csv, write_jsonl, write_parquet
+from helpers.store_rows import query
 
 from monitor.ingest.checks import REASONS
 

@@ -13,7 +13,9 @@ import subprocess
 import sys
 import time
 
-from conftest import REPO, ingest_json, make_config, run_cli, text, write_large_decisions_csv
+from helpers.cli import ingest_json, run_cli, text
+from helpers.configs import REPO, make_config
+from helpers.files import write_large_decisions_csv
 
 from monitor.config import load_config
 from monitor.store.connection import Store

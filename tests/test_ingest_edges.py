@@ -21,7 +21,8 @@ from pathlib import Path
 
 import duckdb
 import pytest
-from conftest import DECISION_COLUMNS, OUTCOME_COLUMNS, decision_row, make_config, outcome_row
+from helpers.configs import DECISION_COLUMNS, OUTCOME_COLUMNS, make_config
+from helpers.files import decision_row, outcome_row
 
 from monitor.config import load_config
 from monitor.ingest.batches import ingest
@@ -71,7 +72,7 @@ def _map_edges(
 
 
 # One configuration per row family; each entry: (field, edges).  The overrides change
-# the small test configuration (tests/conftest.py) so that every kind of bound occurs:
+# the small test configuration (tests/helpers/configs.py) so that every kind of bound occurs:
 # a negative and fractional lower bound, a mapped judgment whose map reaches outside
 # judgment_range, a numeric criterion with a range.
 DECISIONS_NUMERIC = {

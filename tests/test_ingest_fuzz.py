@@ -20,7 +20,8 @@ from pathlib import Path
 
 import duckdb
 import pytest
-from conftest import DECISION_COLUMNS, OUTCOME_COLUMNS, decision_row, make_config, outcome_row
+from helpers.configs import DECISION_COLUMNS, OUTCOME_COLUMNS, make_config
+from helpers.files import decision_row, outcome_row
 from hypothesis import HealthCheck, Phase, given, settings
 from hypothesis import strategies as st
 

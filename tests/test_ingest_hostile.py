@@ -19,18 +19,10 @@ from pathlib import Path
 
 import pytest
 from click.testing import CliRunner
-from conftest import (
-    DECISION_COLUMNS,
-    decision_row,
-    ingest_json,
-    make_config,
-    query,
-    run_cli,
-    text,
-    write_csv,
-    write_jsonl,
-    write_parquet,
-)
+from helpers.cli import ingest_json, run_cli, text
+from helpers.configs import DECISION_COLUMNS, make_config
+from helpers.files import decision_row, write_csv, write_jsonl, write_parquet
+from helpers.store_rows import query
 
 from monitor.cli import main
 

@@ -14,7 +14,7 @@ import subprocess
 from pathlib import Path
 
 import pytest
-from conftest import REPO
+from helpers.configs import REPO
 
 MAKE = shutil.which("make") or "make"
 FAKE_APT = """#!/bin/sh

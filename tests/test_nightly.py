@@ -12,7 +12,7 @@ from pathlib import Path
 import duckdb
 import numpy as np
 import pandas as pd
-from conftest import run_cli, text
+from helpers.cli import run_cli, text
 
 from monitor.config import load_config
 from monitor.demo import prepare

@@ -24,7 +24,8 @@ import zipfile
 from pathlib import Path
 
 import pytest
-from conftest import REPO, decision_row, make_config, write_csv
+from helpers.configs import REPO, make_config
+from helpers.files import decision_row, write_csv
 
 pytestmark = pytest.mark.slow
 

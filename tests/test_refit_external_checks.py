@@ -15,7 +15,8 @@ import numpy as np
 import pandas as pd
 import pytest
 import statsmodels.api as sm
-from conftest import run_cli, text, write_config
+from helpers.cli import run_cli, text
+from helpers.configs import write_config
 from helpers.references import LONGLEY_CERTIFIED_COEF, LONGLEY_CERTIFIED_SE
 from helpers.store_rows import design_frame
 

@@ -16,7 +16,8 @@ import numpy as np
 import pandas as pd
 import pytest
 import statsmodels.api as sm
-from conftest import run_cli, text, write_config
+from helpers.cli import run_cli, text
+from helpers.configs import write_config
 from helpers.scenario import concat_csv, scenario_config
 from helpers.store_rows import query_store as read_table
 

@@ -14,7 +14,9 @@ import time
 from pathlib import Path
 
 import pytest
-from conftest import REPO, base_config, make_config, query, run_cli, text, write_config
+from helpers.cli import run_cli, text
+from helpers.configs import REPO, base_config, make_config, write_config
+from helpers.store_rows import query
 
 from monitor.config import load_config
 from monitor.store.connection import Store, StoreBusy

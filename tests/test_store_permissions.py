@@ -14,7 +14,9 @@ import stat
 from pathlib import Path
 
 import pytest
-from conftest import decision_row, make_config, run_cli, text, write_csv
+from helpers.cli import run_cli, text
+from helpers.configs import make_config
+from helpers.files import decision_row, write_csv
 
 from monitor.config import ConfigError, load_config
 from monitor.store.connection import Store

@@ -39,3 +39,18 @@ def design_frame(config: Config, rows: pd.DataFrame) -> pd.DataFrame:
         else:
             out[name] = rows[name].astype(float)
     return out
+
+
+def store_path(config: Path) -> Path:
+    from monitor.config import load_config
+
+    return Path(load_config(config).store.path)
+
+
+def query(config: Path, sql: str, params: list | None = None) -> list[tuple]:
+    """Read the store directly (read-only) and return all rows."""
+    con = duckdb.connect(str(store_path(config)), read_only=True)
+    try:
+        return con.execute(sql, params or []).fetchall()
+    finally:
+        con.close()
