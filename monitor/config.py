@@ -36,7 +36,7 @@ ENV_VAR = "CUEWATCH_CONFIG"
 
 # Cue names become column names in the store and keys in reports, so they must be
 # plain identifiers that cannot collide with the store's own columns (the store's schema
-# says which those are: monitor.store.schema.reserved_column_names).
+# says which those are: monitor.store.rules.RESERVED_COLUMN_NAMES).
 _NAME = re.compile(r"^[A-Za-z][A-Za-z0-9_]{0,62}$")
 
 
@@ -403,7 +403,7 @@ class Config(_Strict):
     @model_validator(mode="after")
     def _cross_checks(self) -> Config:
         # Imported here, not at the top: the store's package imports this module.
-        from monitor.store.schema import reserved_column_names
+        from monitor.store.rules import RESERVED_COLUMN_NAMES
 
         seen: dict[str, str] = {}
         for name in self.cues:
@@ -412,7 +412,7 @@ class Config(_Strict):
                     f"cues: {name!r} is not a cue name (a letter followed by at most 62 "
                     "letters, digits or '_')"
                 )
-            if name.lower() in reserved_column_names():
+            if name.lower() in RESERVED_COLUMN_NAMES:
                 raise ValueError(
                     f"cues.{name}: the store uses the column name {name.lower()!r} itself "
                     "(decisions, outcomes or their views); give the cue another name"

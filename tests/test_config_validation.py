@@ -209,3 +209,12 @@ def test_a_quarter_at_the_ends_of_the_calendar_is_one_sentence(config_path, tmp_
         main, ["--config", str(config_path), "export", "--quarter", quarter, "--out", str(tmp_path)]
     )
     _one_sentence(result, quarter)
+
+
+def test_the_written_out_reserved_names_are_what_the_migrations_create():
+    # The configuration checks against a written-out set (no database per load); it must
+    # stay equal to the columns the migrations really create.
+    from monitor.store.rules import RESERVED_COLUMN_NAMES
+    from monitor.store.schema import reserved_column_names
+
+    assert RESERVED_COLUMN_NAMES == reserved_column_names()

@@ -73,3 +73,29 @@ def current_outcome_rows_sql(where: str | None = None, *, count_versions: bool =
 def ingested_by(column: str = "ingested_at") -> str:
     """The as-of predicate: the row had arrived by the moment bound to its ``?``."""
     return f"{column} <= ?::TIMESTAMPTZ"
+
+
+# --- names the store keeps for itself -------------------------------------------------
+
+# Every column of `decisions`, `outcomes` and their views (lower-case; DuckDB's
+# identifiers ignore case): a cue cannot take one of these names.  Written out so that
+# loading a configuration does not build a database; tests/test_config_validation.py
+# holds it equal to what the migrations actually create
+# (monitor.store.schema.reserved_column_names), so a new column cannot slip past it.
+RESERVED_COLUMN_NAMES = frozenset(
+    {
+        "batch_id",
+        "criterion",
+        "decided_at",
+        "decided_day",
+        "decision_id",
+        "decision_maker",
+        "ingested_at",
+        "judgment",
+        "observed_at",
+        "outcome_batch_id",
+        "outcome_ingested_at",
+        "source_line",
+        "team",
+    }
+)
