@@ -18,6 +18,36 @@ from monitor.refit import refit
 from monitor.store.connection import Store
 
 
+def _one_handler_store(tmp_path, x, y, names, days, policy):
+    """A store of one decision-maker's rows (x columns named ``names``, judgment y) spread
+    evenly over ``days`` days from 2024-02-05, ingested and refitted."""
+    n = len(y)
+    day = [date(2024, 2, 5) + timedelta(days=int(d)) for d in (np.arange(n) * days) // n]
+    frame = pd.DataFrame(
+        {
+            "case_id": [f"c{i}" for i in range(n)],
+            "decided": [f"{d.isoformat()} 10:00:00" for d in day],
+            "who": "dm1",
+            "y": y,
+            **{name: x[:, j] for j, name in enumerate(names)},
+        }
+    )
+    frame.to_csv(tmp_path / "decisions.csv", index=False, float_format="%.17g")
+    doc = {
+        "store": {"path": "store/cw.duckdb"},
+        "decisions": {"id": "case_id", "decided_at": "decided", "decision_maker": "who",
+                      "judgment": "y", "timezone": "UTC"},
+        "cues": {name: {"type": "binary" if name == "gender" else "numeric"} for name in names},
+        "windows": {"length_days": 90, "step_days": 7, "min_rows": 40},
+        "policy": policy,
+    }  # fmt: skip
+    config = load_config(write_config(tmp_path / "cw.toml", doc))
+    Store(config).init()
+    ingest(config, [str(tmp_path / "decisions.csv")], kind="decisions")
+    refit(config)
+    return config
+
+
 def test_checks_use_the_stored_qr_fit_of_a_poorly_conditioned_window(tmp_path):
     rng = np.random.default_rng(4)
     n = 500
@@ -26,32 +56,9 @@ def test_checks_use_the_stored_qr_fit_of_a_poorly_conditioned_window(tmp_path):
     # x0 and x1 nearly collinear: cue correlation condition number ~1e7-1e8 -> QR refit.
     x = np.column_stack([a, a + 3e-4 * rng.normal(size=n), gender])
     y = x @ [1.0, 2.0, 0.8] + rng.normal(size=n)
-    day = [date(2024, 2, 5) + timedelta(days=int(d)) for d in (np.arange(n) * 40) // n]
-    frame = pd.DataFrame(
-        {
-            "case_id": [f"c{i}" for i in range(n)],
-            "decided": [f"{d.isoformat()} 10:00:00" for d in day],
-            "who": "dm1",
-            "y": y,
-            "x0": x[:, 0],
-            "x1": x[:, 1],
-            "gender": x[:, 2],
-        }
+    config = _one_handler_store(
+        tmp_path, x, y, ["x0", "x1", "gender"], 40, {"forbidden": ["gender"], "min_rows": 100}
     )
-    frame.to_csv(tmp_path / "decisions.csv", index=False, float_format="%.17g")
-    doc = {
-        "store": {"path": "store/cw.duckdb"},
-        "decisions": {"id": "case_id", "decided_at": "decided", "decision_maker": "who",
-                      "judgment": "y", "timezone": "UTC"},
-        "cues": {"x0": {"type": "numeric"}, "x1": {"type": "numeric"},
-                 "gender": {"type": "binary"}},
-        "windows": {"length_days": 90, "step_days": 7, "min_rows": 40},
-        "policy": {"forbidden": ["gender"], "min_rows": 100},
-    }  # fmt: skip
-    config = load_config(write_config(tmp_path / "cw.toml", doc))
-    Store(config).init()
-    ingest(config, [str(tmp_path / "decisions.csv")], kind="decisions")
-    refit(config)
     with Store(config).reader() as con:
         method = con.execute(
             "SELECT method FROM fits WHERE scope = 'decision_maker' AND n_decisions = ?", [n]
@@ -88,30 +95,8 @@ def test_windows_below_the_policy_minimum_show_estimates_but_are_not_assessed(tm
     gender = rng.integers(0, 2, size=n).astype(float)
     x = np.column_stack([rng.normal(size=n), gender])
     y = x @ [1.0, 2.0] + rng.normal(size=n)
-    day = [date(2024, 2, 5) + timedelta(days=int(d)) for d in (np.arange(n) * 60) // n]
-    frame = pd.DataFrame(
-        {
-            "case_id": [f"c{i}" for i in range(n)],
-            "decided": [f"{d.isoformat()} 10:00:00" for d in day],
-            "who": "dm1",
-            "y": y,
-            "x0": x[:, 0],
-            "gender": x[:, 1],
-        }
-    )
-    frame.to_csv(tmp_path / "decisions.csv", index=False, float_format="%.17g")
-    doc = {
-        "store": {"path": "store/cw.duckdb"},
-        "decisions": {"id": "case_id", "decided_at": "decided", "decision_maker": "who",
-                      "judgment": "y", "timezone": "UTC"},
-        "cues": {"x0": {"type": "numeric"}, "gender": {"type": "binary"}},
-        "windows": {"length_days": 90, "step_days": 7, "min_rows": 40},
-        "policy": {"forbidden": ["gender"], "min_rows": 200, "tolerance": 0.05},
-    }  # fmt: skip
-    config = load_config(write_config(tmp_path / "cw.toml", doc))
-    Store(config).init()
-    ingest(config, [str(tmp_path / "decisions.csv")], kind="decisions")
-    refit(config)
+    policy = {"forbidden": ["gender"], "min_rows": 200, "tolerance": 0.05}
+    config = _one_handler_store(tmp_path, x, y, ["x0", "gender"], 60, policy)
     with Store(config).reader() as con:
         found, _ = evaluate(con, config)
     direct = found[found["check_kind"] == "forbidden_direct"]

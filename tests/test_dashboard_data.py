@@ -18,6 +18,7 @@ import pandas as pd
 import pytest
 import statsmodels.api as sm
 from helpers.monthly_demo import APP, HELD_BACK_FROM, REASON_OF_KIND, build_demo, copy_store
+from helpers.monthly_demo import run_page as app
 from helpers.store_rows import design_frame, read_store
 from streamlit.testing.v1 import AppTest
 
@@ -36,17 +37,6 @@ def demo_config(tmp_path_factory) -> Path:
 def truth(demo_config) -> dict:
     # Source: the scenario generator's record of what it planted (synthetic_logs/ostwyn.py).
     return json.loads((demo_config.parent / "gen" / "truth.json").read_text())
-
-
-def app(cfg: Path, monkeypatch, page: str | None = None) -> AppTest:
-    monkeypatch.setenv("CUEWATCH_CONFIG", str(cfg))
-    at = AppTest.from_file(str(APP), default_timeout=60)
-    at.run()
-    if page:
-        at.switch_page(page)
-        at.run()
-    assert not at.exception, [e.value for e in at.exception]
-    return at
 
 
 def planted(truth: dict, kind: str) -> str:

@@ -19,7 +19,7 @@ from pathlib import Path
 
 import pytest
 from helpers.hostile_store import BOLD_MD, IMAGE_MD, build_hostile_store
-from helpers.monthly_demo import APP
+from helpers.monthly_demo import run_page
 from helpers.store_rows import read_store
 from markdown_it import MarkdownIt
 from streamlit.testing.v1 import AppTest
@@ -48,17 +48,6 @@ def copy_of(hostile, dest: Path, extra_config: str = "") -> tuple[Path, int]:
     text = cfg.read_text(encoding="utf-8").replace(str(cfg.parent / "run"), str(dest / "run"))
     (dest / "ostwyn.toml").write_text(text + extra_config, encoding="utf-8")
     return dest / "ostwyn.toml", alert_id
-
-
-def run_page(cfg: Path, monkeypatch, page: str | None = None) -> AppTest:
-    monkeypatch.setenv("CUEWATCH_CONFIG", str(cfg))
-    at = AppTest.from_file(str(APP), default_timeout=60)
-    at.run()
-    if page:
-        at.switch_page(page)
-        at.run()
-    assert not at.exception, [e.value for e in at.exception]
-    return at
 
 
 def markdown_strings(at: AppTest) -> list[str]:

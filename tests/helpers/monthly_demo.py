@@ -83,3 +83,18 @@ def copy_store(cfg: Path, dest: Path) -> Path:
     shutil.copytree(src / "later", dest / "later")
     shutil.copy(src / "gen" / "truth.json", dest / "truth.json")
     return write_demo_config(dest)
+
+
+def run_page(cfg: Path, monkeypatch, page: str | None = None):
+    """Run the dashboard app with Streamlit's AppTest on ``cfg`` (and switch to ``page``);
+    fails on any exception the page raised."""
+    from streamlit.testing.v1 import AppTest
+
+    monkeypatch.setenv("CUEWATCH_CONFIG", str(cfg))
+    at = AppTest.from_file(str(APP), default_timeout=60)
+    at.run()
+    if page:
+        at.switch_page(page)
+        at.run()
+    assert not at.exception, [e.value for e in at.exception]
+    return at
