@@ -113,6 +113,41 @@ def ingest(obj: Context, paths: tuple[str, ...], kind: str | None, as_json: bool
         fail(f"{len(summary.failed_files)} file(s) failed; first: {first.path}: {first.message}")
 
 
+@main.command()
+@click.option("--reason", help="Only records quarantined for this reason.")
+@click.option("--batch", type=int, help="Only records of this batch.")
+@click.option("--file", "file", help="Only records of the batch(es) read from this path.")
+@click.option("--all", "include_all", is_flag=True, help="Include records already re-admitted.")
+@click.option(
+    "--readmit", is_flag=True, help="Re-check the records against the current configuration."
+)
+@click.option("--json", "as_json", is_flag=True, help="Print the result as JSON.")
+@click.pass_obj
+@handles_user_errors
+def quarantine(
+    obj: Context,
+    reason: str | None,
+    batch: int | None,
+    file: str | None,
+    include_all: bool,
+    readmit: bool,
+    as_json: bool,
+) -> None:
+    """List quarantined records by reason, batch and file, or re-admit them (once)."""
+    from monitor.ingest.readmit import Selection, list_quarantine
+    from monitor.ingest.readmit import readmit as run_readmit
+
+    selection = Selection(reason, batch, file, include_all)
+    if readmit:
+        result = run_readmit(obj.config, selection)
+    else:
+        result = list_quarantine(obj.config, selection)
+    if as_json:
+        print_json(result.to_json())
+    else:
+        click.echo(result.describe())
+
+
 def _with_progress(run, enabled: bool):
     """Run ``run(on_file)`` with a rich progress bar on stderr when it is a terminal."""
     if not enabled or not sys.stderr.isatty():

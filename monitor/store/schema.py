@@ -260,6 +260,25 @@ MIGRATIONS: list[tuple[int, str, list[str]]] = [
             "ALTER TABLE alert_history ADD COLUMN via VARCHAR",
         ],
     ),
+    (
+        6,
+        "readmissions: quarantined records re-admitted after a configuration change",
+        [
+            # One row per quarantined record that `cuewatch quarantine --readmit` brought
+            # in: the quarantine row (its batch and line) and the stored row it became
+            # (readmitted_batch, readmitted_line = that decision's or outcome's batch_id,
+            # source_line).  A separate table rather than columns on `quarantine`, whose
+            # writers insert by position; the key makes re-admission happen at most once.
+            """CREATE TABLE readmissions (
+                quarantine_batch BIGINT NOT NULL,
+                quarantine_line BIGINT NOT NULL,
+                readmitted_batch BIGINT NOT NULL,
+                readmitted_line BIGINT NOT NULL,
+                readmitted_at TIMESTAMPTZ NOT NULL,
+                PRIMARY KEY (quarantine_batch, quarantine_line)
+            )""",
+        ],
+    ),
 ]
 
 
