@@ -338,6 +338,9 @@ class IngestConfig(_Strict):
     earliest: str = "1990-01-01"
     # DuckDB's memory limit while ingesting: large files spill to disk beyond it.
     memory_limit: str = "768MB"
+    # A landing file is read only once it has not changed for this long (0: at once);
+    # see monitor.ingest.files.plan_files.
+    settle_seconds: float = Field(5.0, ge=0, le=24 * 3600)
 
     @field_validator("memory_limit")
     @classmethod

@@ -113,6 +113,7 @@ class Names:
     def config(self, tmp: Path) -> Path:
         doc = {
             "store": {"path": "store/cw.duckdb", "lock_timeout_s": 5.0},
+            "ingest": {"settle_seconds": 0},  # files are written, then ingested at once
             "decisions": {
                 "landing": f"{self.landing}/decisions",
                 "id": self.id,

@@ -50,7 +50,9 @@ from monitor.store.schema import drop_temp_tables, empty_temp_table, stage_temp_
 class FileResult:
     path: str
     kind: str
-    status: str  # "ingested" | "skipped" | "failed"
+    # "ingested" | "skipped" (already ingested) | "waiting" (a landing file still
+    # changing: not read, not recorded, taken by a later run) | "failed"
+    status: str
     batch_id: int | None = None
     rows_read: int = 0
     accepted: int = 0
@@ -81,6 +83,10 @@ class IngestSummary:
         return sum(f.status == "skipped" for f in self.files)
 
     @property
+    def waiting_files(self) -> int:
+        return sum(f.status == "waiting" for f in self.files)
+
+    @property
     def failed_files(self) -> list[FileResult]:
         return [f for f in self.files if f.status == "failed"]
 
@@ -100,6 +106,7 @@ class IngestSummary:
             "quarantined": self.quarantined,
             "duplicates": self.duplicates,
             "skipped_files": self.skipped_files,
+            "waiting_files": self.waiting_files,
             "failed_files": len(self.failed_files),
             "quarantine_reasons": self.quarantine_reasons,
         }
@@ -113,6 +120,11 @@ class IngestSummary:
             f"Rows: {self.accepted} accepted, {self.quarantined} quarantined, "
             f"{self.duplicates} duplicates.",
         ]
+        if self.waiting_files:
+            lines.append(
+                f"{self.waiting_files} file(s) waiting: changed too recently to be complete; "
+                "a later run takes them."
+            )
         if self.quarantine_reasons:
             reasons = ", ".join(f"{k} {v}" for k, v in self.quarantine_reasons.items())
             lines.append(f"Quarantine reasons: {reasons}.")
@@ -148,7 +160,7 @@ def ingest(
         paths = [str(stdin_tmp) if p == "-" else p for p in paths]
     try:
         plan = plan_files(config, paths, kind)
-        if any(k == "outcomes" for _, k in plan) and config.outcomes is None:
+        if any(p.kind == "outcomes" for p in plan) and config.outcomes is None:
             raise IngestUsageError("outcome files given but the configuration has no [outcomes].")
         store = Store(config)
         now = now or utc_now()
@@ -159,7 +171,11 @@ def ingest(
             # DuckDB's default limit (80% of RAM); past this limit they spill to the
             # store's temporary folder (<store>.tmp), which keeps peak RSS bounded.
             con.execute(f"SET memory_limit = {sql_literal(config.ingest.memory_limit)}")
-            for i, (path, k) in enumerate(plan):
+            for i, planned in enumerate(plan):
+                path, k = planned.path, planned.kind
+                if planned.wait:
+                    results.append(FileResult(str(path), k, "waiting", message=planned.wait))
+                    continue
                 if on_file:
                     on_file(i, len(plan), path)
                 label = "-" if stdin_tmp is not None and path == stdin_tmp else str(path)

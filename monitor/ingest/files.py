@@ -9,7 +9,9 @@ import csv
 import hashlib
 import io
 import shutil
+import time
 from collections.abc import Iterable, Iterator
+from dataclasses import dataclass
 from pathlib import Path
 
 import duckdb
@@ -44,12 +46,26 @@ def detect_format(path: Path) -> str:
     return fmt
 
 
-def plan_files(config: Config, paths: Iterable[str], kind: str | None) -> list[tuple[Path, str]]:
-    """Resolve the command's paths to (file, kind) pairs in a stable order.
+@dataclass(frozen=True)
+class PlannedFile:
+    """One file of an ingest run.  ``wait`` says why a landing file is not read yet
+    (it changed too recently); empty when the file is to be read now."""
 
-    No paths: the configured landing folders.  A folder: its data files, sorted by
-    name.  The kind comes from ``kind`` or, failing that, from which landing folder
-    the file lies under.
+    path: Path
+    kind: str
+    wait: str = ""
+
+
+def plan_files(
+    config: Config, paths: Iterable[str], kind: str | None, *, clock: float | None = None
+) -> list[PlannedFile]:
+    """Resolve the command's paths to files and kinds in a stable order.
+
+    No paths: the configured landing folders, where a file is read only when complete
+    (``settled``; the others come back with ``wait`` set).  A folder: its data files,
+    sorted by name, temporary names left out.  A file named on the command line is
+    read as it is.  The kind comes from ``kind`` or, failing that, from which landing
+    folder the file lies under.  ``clock`` (seconds since the epoch) defaults to now.
     """
     if kind is not None and kind not in KINDS:
         raise IngestUsageError(f"--kind must be one of {', '.join(KINDS)}, not '{kind}'.")
@@ -58,11 +74,14 @@ def plan_files(config: Config, paths: Iterable[str], kind: str | None) -> list[t
     if not paths:
         if not landings:
             raise IngestUsageError("no paths given and no landing folders configured.")
-        out: list[tuple[Path, str]] = []
-        for k, folder in landings.items():
-            if kind is None or kind == k:
-                out.extend((f, k) for f in _data_files(folder) if folder.exists())
-        return out
+        now = time.time() if clock is None else clock
+        settle = config.ingest.settle_seconds
+        return [
+            PlannedFile(f, k, settled(f, settle, now))
+            for k, folder in landings.items()
+            if kind is None or kind == k
+            for f in _data_files(folder)
+        ]
     out = []
     for raw in paths:
         p = Path(raw).expanduser().resolve()
@@ -76,8 +95,51 @@ def plan_files(config: Config, paths: Iterable[str], kind: str | None) -> list[t
                     f"cannot tell whether {f} holds decisions or outcomes: "
                     "put it in a landing folder or pass --kind."
                 )
-            out.append((f, k))
+            out.append(PlannedFile(f, k))
     return out
+
+
+# --- when a landing file is complete ---------------------------------------------------
+#
+# A producer writing into a landing folder is never asked to cooperate beyond one of two
+# habits: write under a temporary name and rename when done (never read: ``is_temporary``),
+# or write in place without pausing longer than ``[ingest] settle_seconds`` (read only
+# once the file has not changed for that long: ``settled``).  One look at the file's
+# times decides, so a run never waits.
+
+TEMPORARY_PREFIXES = (".", "~")
+TEMPORARY_SUFFIXES = (".tmp", ".part", ".partial")  # also '.filepart', '.csv.part', ...
+
+
+def is_temporary(name: str) -> bool:
+    """True for a file or folder name that marks work in progress (hidden, editor or
+    office lock files, download and copy-tool partials)."""
+    return name.startswith(TEMPORARY_PREFIXES) or name.lower().endswith(TEMPORARY_SUFFIXES)
+
+
+def settled(path: Path, settle_seconds: float, now: float) -> str:
+    """Empty when ``path`` last changed at least ``settle_seconds`` before ``now``
+    (seconds since the epoch); otherwise why it waits.  The last change is the later of
+    the modification time and the inode change time, so a copier that restores an old
+    modification time (``cp -p``, ``rsync -t``) still waits after it finished."""
+    if settle_seconds <= 0:
+        return ""
+    try:
+        st = path.stat()
+    except FileNotFoundError:  # renamed or removed since the folder was listed
+        return "gone before it could be read; the next run looks again"
+    age = now - max(st.st_mtime, st.st_ctime)
+    if age >= settle_seconds:
+        return ""
+    when = (
+        f"changed {age:.1f} s ago"
+        if age >= 0
+        else f"changed {-age:.1f} s in the future (do the clocks disagree?)"
+    )
+    return (
+        f"{when}: read once unchanged for {settle_seconds:g} s "
+        "([ingest] settle_seconds); the next run takes it"
+    )
 
 
 def _landings(config: Config) -> dict[str, Path]:
@@ -90,12 +152,16 @@ def _landings(config: Config) -> dict[str, Path]:
 
 
 def _data_files(folder: Path) -> list[Path]:
+    """The data files under ``folder`` (any depth), sorted, without temporary names
+    (the file's own or a folder's between ``folder`` and the file)."""
     if not folder.exists():
         return []
     return sorted(
         p
         for p in folder.rglob("*")
-        if p.is_file() and p.suffix.lower() in FORMATS and not p.name.startswith(".")
+        if p.is_file()
+        and p.suffix.lower() in FORMATS
+        and not any(is_temporary(part) for part in p.relative_to(folder).parts)
     )
 
 

@@ -73,6 +73,9 @@ def base_config() -> dict[str, Any]:
             "band": {"type": "categorical", "levels": ["a", "b", "c"], "reference": "a"},
         },
         "policy": {"forbidden": ["region"]},
+        # Tests write a file and ingest it at once (tests/test_ingest_landing.py tests the
+        # settle time itself).
+        "ingest": {"settle_seconds": 0},
     }
 
 
