@@ -72,3 +72,12 @@ def test_achievement_interval_is_fishers():
     assert np.isclose(check.ci_high[0], 0.3788, atol=5e-4)
     assert check.flagged[0]  # 0.379 < 0.4: wholly below the floor
     assert not achievement_floor(fits, floor=0.35, min_linked=50, z=1.96).flagged[0]
+
+
+def test_an_interval_across_the_floor_neither_opens_nor_closes():
+    # Three windows: wholly below, across, wholly above the floor 0.5 (Fisher intervals
+    # at z = 1.96, n = 103: half-width ~0.196 in z).
+    fits = type("F", (), {"r_a": np.array([0.1, 0.5, 0.9]), "n_linked": np.array([103.0] * 3)})()
+    check = achievement_floor(fits, floor=0.5, min_linked=50, z=1.96)
+    assert check.flagged.tolist() == [True, False, False]
+    assert check.assessable.tolist() == [True, False, True]

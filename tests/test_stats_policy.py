@@ -609,20 +609,24 @@ def test_achievement_interval_is_the_fisher_interval_of_pearsons_r():
     np.testing.assert_allclose(check.estimate, r, rtol=1e-12)
     np.testing.assert_allclose(check.ci_low, low, rtol=1e-9)
     np.testing.assert_allclose(check.ci_high, high, rtol=1e-9)
-    np.testing.assert_array_equal(check.assessable, [True, True, True, True])
-    # Flagged exactly where the whole interval lies below the floor.
-    np.testing.assert_array_equal(check.flagged, np.array(high) < 0.3)
+    # Assessable where the interval is wholly on one side of the floor; flagged exactly
+    # where it lies wholly below.
+    low, high = np.array(low), np.array(high)
+    np.testing.assert_array_equal(check.assessable, (high < 0.3) | (low >= 0.3))
+    np.testing.assert_array_equal(check.flagged, high < 0.3)
     assert check.flagged[2] and not check.flagged[3]
 
 
 def test_achievement_floor_needs_min_linked_and_more_than_three_outcomes():
     # n_linked = 3 leaves the Fisher interval undefined (sqrt(n - 3) = 0): not assessable,
-    # whatever min_linked says; n = min_linked is enough ("at least").
+    # whatever min_linked says; n = min_linked is enough ("at least").  At n = 4 the
+    # interval (tanh(atanh(-0.9) +- 1.96) = (-0.998, 0.45), by hand) lies across the floor
+    # 0: no evidence either way, so not assessable either.
     fits = SimpleNamespace(
         r_a=np.array([-0.9, -0.9, -0.9, -0.9, np.nan]), n_linked=np.array([3, 4, 49, 50, 80])
     )
     check = achievement_floor(fits, floor=0.0, min_linked=4, z=1.96)
-    np.testing.assert_array_equal(check.assessable, [False, True, True, True, False])
+    np.testing.assert_array_equal(check.assessable, [False, False, True, True, False])
     strict = achievement_floor(fits, floor=0.0, min_linked=50, z=1.96)
     np.testing.assert_array_equal(strict.assessable, [False, False, False, True, False])
     np.testing.assert_array_equal(strict.flagged, [False, False, False, True, False])

@@ -126,7 +126,8 @@ def consistency_floor(
     standard error from the large-sample variance of R^2 (Olkin & Finn 1995,
     Psychological Bulletin 118, from memory: 4 R^2 (1 - R^2)^2 df^2 / ((n^2 - 1)(n + 3))),
     the interval adj R^2 +- z SE mapped back to R.  The floor is crossed only when the
-    whole interval lies below it: a small window's R_s is biased upwards (a judge
+    whole interval lies below it, and cleared only when it lies wholly above (an interval
+    across the floor is not assessable): a small window's R_s is biased upwards (a judge
     answering at random with 8 cues shows R_s ~ 0.45 at n = 40) and noisy, so its point
     estimate alone would flap.  Without ``z``: the point estimate, as before.
     """
@@ -140,10 +141,13 @@ def consistency_floor(
         se = np.sqrt(4.0 * r2 * (1.0 - r2) ** 2 * df**2 / ((n**2 - 1.0) * (n + 3.0)))
         to_r = lambda v: np.sqrt(np.clip(v, 0.0, 1.0))  # noqa: E731
         estimate, low, high = to_r(adj), to_r(adj - z * se), to_r(adj + z * se)
-    assessable = np.isfinite(estimate) & np.isfinite(high) & (n >= min_rows) & (df > 0)
-    with np.errstate(invalid="ignore"):
-        flagged = assessable & (high < floor)
-    return FloorCheck(flagged, assessable, estimate, low, high)
+    return _interval_verdict(
+        np.isfinite(estimate) & np.isfinite(high) & (n >= min_rows) & (df > 0),
+        estimate,
+        low,
+        high,
+        floor,
+    )
 
 
 def achievement_floor(
@@ -161,10 +165,17 @@ def achievement_floor(
         centre = np.arctanh(np.clip(r, -0.999999, 0.999999))
         half = z / np.sqrt(n - 3.0)
         low, high = np.tanh(centre - half), np.tanh(centre + half)
-    assessable = np.isfinite(r) & (n >= min_linked) & (n > 3)
+    return _interval_verdict(np.isfinite(r) & (n >= min_linked) & (n > 3), r, low, high, floor)
+
+
+def _interval_verdict(usable, estimate, low, high, floor: float) -> FloorCheck:
+    """Below the floor when the whole interval is below it, clear when the whole interval
+    is at or above it; an interval across the floor is no evidence either way (not
+    assessable), so it neither opens nor closes an alert and the alert does not flap."""
     with np.errstate(invalid="ignore"):
-        flagged = assessable & (high < floor)
-    return FloorCheck(flagged, assessable, r, low, high)
+        below, above = high < floor, low >= floor
+    assessable = usable & (below | above)
+    return FloorCheck(assessable & below, assessable, estimate, low, high)
 
 
 @dataclass(frozen=True)
