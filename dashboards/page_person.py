@@ -6,6 +6,7 @@ import streamlit as st
 
 from dashboards import charts, ui
 from monitor.dashboard import data as dd
+from monitor.refit.fits_read import CUE_FIELDS
 
 st.title("One decision-maker")
 people = ui.load(dd.decision_makers)
@@ -50,25 +51,15 @@ st.caption(
 )
 
 with st.expander("Latest window: weights table", expanded=True):
-    table = hist.latest[["cue", "forbidden", "weight", "std_error", "ci_low", "ci_high",
-                         "std_weight", "utilization_r", "validity_r", "p_value", "estimable",
-                         "reason", "n_decisions"]]  # fmt: skip
+    # The columns of `fits --json` (one owner: monitor.refit.fits_read.CUE_FIELDS), with
+    # whether the cue is forbidden and the window's size.
+    table = hist.latest[["cue", "forbidden", *CUE_FIELDS[1:], "n_decisions"]]
+    numbers = [c for c in CUE_FIELDS if c not in ("cue", "p_value", "estimable", "reason")]
     st.dataframe(
         table,
         hide_index=True,
         width="stretch",
-        column_config={
-            c: st.column_config.NumberColumn(c, format="%.3f")
-            for c in (
-                "weight",
-                "std_error",
-                "ci_low",
-                "ci_high",
-                "std_weight",
-                "utilization_r",
-                "validity_r",
-            )  # fmt: skip
-        }
+        column_config={c: st.column_config.NumberColumn(c, format="%.3f") for c in numbers}
         | {"n_decisions": st.column_config.NumberColumn("n")},
     )
 with st.expander("Alerts for this decision-maker"):
