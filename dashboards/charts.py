@@ -185,7 +185,10 @@ def forbidden_chart(rows: pd.DataFrame) -> alt.Chart:
         part["high"] = rows[hi] if hi else None
         parts.append(part)
     df = pd.concat(parts, ignore_index=True)
-    df["cue level"] = df["cue"] + "=" + df["level"].fillna("")
+    df["cue level"] = [
+        c if lv is None or lv != lv else f"{c}={lv}"
+        for c, lv in zip(df["cue"], df["level"], strict=True)
+    ]
     colour = alt.Color(
         "part:N",
         scale=alt.Scale(

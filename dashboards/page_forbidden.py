@@ -7,6 +7,11 @@ import streamlit as st
 from dashboards import charts, ui
 from monitor.dashboard import data as dd
 
+
+def _label(cue, level) -> str:
+    return str(cue) if level is None or level != level else f"{cue}={level}"
+
+
 st.title("Forbidden-cue evidence")
 ui.caution()
 team_names = ui.load(dd.teams)
@@ -17,14 +22,17 @@ if rows.empty:
     st.info("No forbidden-cue findings yet: run `cuewatch assess` (or the nightly job).")
     st.stop()
 
-flagged = rows[rows["flagged_direct"] | rows["flagged_indirect"]]
+verdicts = rows[~rows["level_detail"].astype(bool)]
+flagged = verdicts[
+    verdicts["flagged_direct"].astype(bool) | verdicts["flagged_indirect"].astype(bool)
+]
 st.subheader("Flagged in the latest window")
 if flagged.empty:
     st.success("No decision-maker's latest window is flagged for a forbidden cue.")
 else:
     st.markdown(
         "\n".join(
-            f"- **{ui.md(r.decision_maker)}**: {ui.md(f'{r.cue}={r.level}')} "
+            f"- **{ui.md(r.decision_maker)}**: {ui.md(_label(r.cue, r.level))} "
             + ("direct" if r.flagged_direct else "")
             + (" and " if r.flagged_direct and r.flagged_indirect else "")
             + ("through proxies" if r.flagged_indirect else "")
@@ -39,10 +47,13 @@ st.caption(
     "Disparity: the difference in mean judgment between the level and the reference level. "
     "Direct: the level's own weight with everything else held fixed. Via proxies: the "
     "rest, carried by permitted cues that differ between the groups. Standardised units, "
-    "95% intervals; n is the number of decisions in the window."
+    "95% intervals; n is the number of decisions in the window. A categorical cue has one "
+    "verdict (its first row: the size of its levels together and their joint test); the "
+    "rows of its levels beneath show their own figures and carry no verdict of their own."
 )
-if not shown.empty:
-    st.altair_chart(charts.forbidden_chart(shown))
+per_column = shown[shown["level_detail"].astype(bool) | shown["disparity"].notna()]
+if not per_column.empty:
+    st.altair_chart(charts.forbidden_chart(per_column))
 
 with st.expander("Table", expanded=True):
     st.dataframe(
@@ -62,7 +73,9 @@ with st.expander("Table", expanded=True):
                 "std_indirect",
                 "indirect_ci_low",
                 "indirect_ci_high",
+                "p_direct",
                 "q_direct",
+                "p_indirect",
                 "q_indirect",
             )  # fmt: skip
         }

@@ -63,7 +63,7 @@ def _forget_assessment(config_path: Path) -> None:
     current episodes afresh and notifies them."""
     con = duckdb.connect(str(load_config(config_path).store.path))
     try:
-        for table in (*ALERT_TABLES, "policy_findings", "policy_proxy_parts"):
+        for table in (*ALERT_TABLES, "finding_versions", "proxy_part_versions"):
             con.execute(f"DELETE FROM {table}")
         con.execute("DELETE FROM store_facts WHERE key = 'assessed_fits'")
     finally:

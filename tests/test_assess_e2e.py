@@ -27,6 +27,7 @@ from monitor.assess.alerts import assess
 from monitor.config import load_config
 from monitor.ingest.batches import ingest
 from monitor.refit.windows import refit
+from monitor.stats.design import dummy_name
 from monitor.store.connection import Store
 
 START = date(2024, 1, 1)
@@ -168,8 +169,16 @@ def test_drift_compares_each_window_with_the_latest_one_ending_a_full_length_ear
     ref["p"] = 2 * stats.norm.sf(ref["z"].abs())
     ref["window_end"] = ref["window_end"].dt.date
 
-    drift = planted.findings[
-        (planted.findings["check_kind"] == "drift") & (planted.findings["cue"] != "(all cues)")
+    f = planted.findings
+    # The per-design-column rows: a numeric or binary cue's verdict row, a categorical
+    # cue's level rows (its verdict row is the joint test, tests/test_assess_verdicts.py).
+    per_column = f["level"].notna() | (f["cue"] != "(all cues)") & ~f["cue"].isin(
+        [c for c, spec in config.cues.items() if spec.type == "categorical"]
+    )
+    drift = f[(f["check_kind"] == "drift") & per_column].copy()
+    drift["cue"] = [
+        c if pd.isna(lv) else dummy_name(c, lv)
+        for c, lv in zip(drift["cue"], drift["level"], strict=True)
     ]
     # One finding per (series, cue, window) that has an earlier non-overlapping window.
     keys = ["scope", "decision_maker", "window_end", "cue"]

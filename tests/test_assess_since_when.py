@@ -11,6 +11,7 @@ from helpers.demo_store import build_demo_store
 
 from monitor.assess.alerts import list_alerts
 from monitor.config import load_config
+from monitor.stats.design import cue_of
 from synthetic_logs.ostwyn import load_truth
 
 
@@ -30,7 +31,7 @@ def test_drift_alert_on_a_planted_step_dates_the_change(demo_config):
         for a in list_alerts(load_config(demo_config))
         if a["kind"] == "drift"
         and a["decision_maker"] in step.handler_ids
-        and a["cue"] == step.parameter
+        and a["cue"] == cue_of(step.parameter)
     ]
     assert alerts, "the planted step should raise a drift alert on its cue"
     since = alerts[0]["evidence"]["since"]

@@ -72,16 +72,24 @@ def test_forbidden_cue_q_values_are_benjamini_hochberg_over_the_pack_family(expo
     exported p-values.  Under the per-window FDR rule a row is flagged exactly when it
     is assessable, its |std_weight| reaches the policy tolerance and its q is at most
     the policy's fdr."""
-    config, t = exported[rule]
+    config, all_rows = exported[rule]
+    # A row's own p: the two-sided t test of the direct weight, checked from the exported
+    # weight and standard error (df = n - k - 1; k design columns) on every row that
+    # has a direct weight (verdict rows of one-column cues and level-detail rows).
+    k = len(config.design_columns())
+    own = all_rows[_bool(all_rows["assessable"]) & all_rows["direct_se"].notna()]
+    p_ref = 2 * stats.t.sf(np.abs(own["direct"] / own["direct_se"]), own["n"] - k - 1)
+    np.testing.assert_allclose(own["p_value"], p_ref, rtol=1e-6, atol=1e-12)
+    # The family: one verdict row per decision-maker x forbidden cue (a categorical
+    # cue's levels are detail beneath its joint test, never tested on their own).
+    detail = _bool(all_rows["level_detail"])
+    assert detail.any() and all_rows.loc[detail, "q_value"].isna().all()
+    assert all_rows.loc[detail, "flagged"].isna().all()
+    t = all_rows[~detail].reset_index(drop=True)
     assessable = _bool(t["assessable"])
     p = t["p_value"].to_numpy(float)
     assert assessable.sum() >= 12 and np.isfinite(p[assessable]).all()
-    # The exported p is the two-sided t test of the direct weight: check it first from
-    # the exported weight and standard error (df = n - k - 1; k design columns).
-    k = len(config.design_columns())
     a = t[assessable]
-    p_ref = 2 * stats.t.sf(np.abs(a["direct"] / a["direct_se"]), a["n"] - k - 1)
-    np.testing.assert_allclose(a["p_value"], p_ref, rtol=1e-6, atol=1e-12)
 
     # Source: statsmodels.stats.multitest.multipletests(method="fdr_bh").
     q_ref = multipletests(p[assessable], method="fdr_bh")[1]
@@ -110,7 +118,7 @@ def test_intervals_stand_on_the_scale_of_the_figure_beside_them(exported):
     # ci_low / ci_high bracket the standardised weight; direct_ci_* the raw weight; the
     # ratio of the two scales is the column's sd(x) / sd(Ys) = std_weight / direct.
     _, t = exported["default"]
-    a = t[_bool(t["assessable"])]
+    a = t[_bool(t["assessable"]) & t["direct"].notna()]
     scale = a["std_weight"] / a["direct"]
     np.testing.assert_allclose(a["ci_low"], a["direct_ci_low"] * scale, rtol=1e-9)
     np.testing.assert_allclose(a["ci_high"], a["direct_ci_high"] * scale, rtol=1e-9)
@@ -124,6 +132,7 @@ def test_intervals_stand_on_the_scale_of_the_figure_beside_them(exported):
 def test_proxy_verdict_follows_the_same_rule_in_its_own_family(exported, rule):
     # Source: statsmodels multipletests (fdr_bh) over the assessable rows' indirect p.
     config, t = exported[rule]
+    t = t[~_bool(t["level_detail"])].reset_index(drop=True)
     ok = _bool(t["assessable"])
     q_ref = multipletests(t["indirect_p"].to_numpy(float)[ok], method="fdr_bh")[1]
     np.testing.assert_allclose(t["indirect_q_value"].to_numpy(float)[ok], q_ref, rtol=1e-9)

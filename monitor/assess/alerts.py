@@ -32,12 +32,13 @@ import pandas as pd
 
 from monitor.assess.findings import JOINT, evaluate
 from monitor.assess.outbox import Job, deliver_jobs, delivery_claim, pending, queue
+from monitor.assess.versions import write_versions
 from monitor.cautions import CAUTION
 from monitor.config import Config
 from monitor.errors import UserError
 from monitor.stats.episodes import episodes
 from monitor.store.connection import Store, get_fact, set_fact
-from monitor.store.rules import quote_ident, utc_now
+from monitor.store.rules import utc_now
 
 ALERT_KINDS = {
     "forbidden_direct": "forbidden_cue",
@@ -162,26 +163,18 @@ def _jobs(con) -> list[Job]:
 
 
 def _write_findings(con, findings: pd.DataFrame, proxies: pd.DataFrame, now: datetime) -> None:
-    """Replace the stored findings with this evaluation's."""
-    for table, frame in (("policy_findings", findings), ("policy_proxy_parts", proxies)):
-        con.execute(f"DELETE FROM {table}")
-        if not len(frame):
-            continue
-        # DuckDB reads pandas NaN as NULL: "not estimable" stays missing in SQL.
-        rows = frame.copy()
-        rows.insert(0, "evaluated_at", now)
-        con.register("_rows", rows)
-        try:
-            cols = ", ".join(quote_ident(c) for c in rows.columns)
-            con.execute(f"INSERT INTO {table} ({cols}) SELECT {cols} FROM _rows")
-        finally:
-            con.unregister("_rows")
+    """Bring the stored findings to this evaluation's, keeping every earlier version."""
+    write_versions(con, "finding_versions", findings, now)
+    write_versions(con, "proxy_part_versions", proxies, now)
 
 
 def _window_states(findings: pd.DataFrame) -> pd.DataFrame:
-    """One row per (kind, scope, decision_maker, cue, window) with flagged/assessable,
-    levels of a categorical cue combined (flagged if any level is)."""
-    f = findings[findings["check_kind"].isin(ALERT_KINDS) & (findings["cue"] != JOINT)].copy()
+    """One row per (kind, scope, decision_maker, cue, window) with flagged/assessable:
+    the verdict rows (a categorical cue's per-level rows are detail beneath its verdict)."""
+    verdict = ~findings["level_detail"].astype("boolean").fillna(False).astype(bool)
+    f = findings[
+        findings["check_kind"].isin(ALERT_KINDS) & (findings["cue"] != JOINT) & verdict
+    ].copy()
     f["kind"] = f["check_kind"].map(ALERT_KINDS)
     f["flagged"] = f["flagged"].fillna(False).astype(bool)
     f["assessable"] = f["assessable"].fillna(False).astype(bool)

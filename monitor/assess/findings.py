@@ -16,13 +16,19 @@ import numpy as np
 import pandas as pd
 
 from monitor.config import Config
-from monitor.stats.design import level_of
+from monitor.stats.design import cue_columns, cue_of, level_of
 from monitor.stats.lens import LensFits, fit_lens
 from monitor.stats.limits import normal_half_width
 from monitor.stats.moments import Moments
 from monitor.stats.monitoring import drift_limit, forbidden_cue_limit
 from monitor.stats.policy import flag_forbidden, forbidden_cue_decomposition
-from monitor.stats.trends import achievement_floor, change_point, consistency_floor, weight_drift
+from monitor.stats.trends import (
+    achievement_floor,
+    change_point,
+    consistency_floor,
+    cue_drift,
+    weight_drift,
+)
 
 FINDING_COLUMNS = [
     "check_kind",
@@ -51,6 +57,7 @@ FINDING_COLUMNS = [
     "change_day",
     "change_low",
     "change_high",
+    "level_detail",
 ]
 PROXY_COLUMNS = ["decision_maker", "cue", "level", "window_end", "proxy_cue", "part", "std_part"]
 JOINT = "(all cues)"
@@ -156,6 +163,63 @@ def _std_scale(w: StoredWindows, col: int) -> np.ndarray:
         return np.sqrt(w.moments.comoment[:, col, col] / w.moments.comoment[:, k, k])
 
 
+def _forbidden_rows(w: StoredWindows, idx: np.ndarray, d, fl, flp) -> list[pd.DataFrame]:
+    """The rows of one forbidden cue: per kind (direct, proxy) one verdict row per
+    window; a categorical cue's verdict row (level NULL) carries the reference-invariant
+    size and the joint test, and its levels follow as ``level_detail`` rows with their
+    own figures and no verdict of their own."""
+    names = list(w.fits.names)
+    base = w.meta.iloc[idx].reset_index(drop=True)
+    single = len(d.columns) == 1
+    out = []
+    for kind in ("forbidden_direct", "forbidden_proxy"):
+        direct = kind == "forbidden_direct"
+        verdict = {
+            "p_value": fl.p_value if direct else flp.proxy_p_value,
+            "q_value": fl.q_value if direct else flp.proxy_q_value,
+            "statistic": d.joint_F if direct else d.indirect_joint_F,
+            "flagged": fl.flagged if direct else flp.proxy_flagged,
+        }
+        if not single:
+            rows = _base_rows(base, np.arange(len(idx)), kind)
+            rows["cue"], rows["level"], rows["level_detail"] = d.cue, None, False
+            rows["std_weight"] = d.cue_direct_size
+            rows["std_indirect"] = d.cue_indirect_size
+            for col, values in verdict.items():
+                rows[col] = values
+            rows["assessable"] = fl.assessable
+            rows["reason"] = [r or None for r in d.reason]
+            out.append(rows)
+        for j, column in enumerate(d.columns):
+            scale = _std_scale(w, names.index(column))[idx]
+            rows = _base_rows(base, np.arange(len(idx)), kind)
+            rows["cue"], rows["level"], rows["level_detail"] = d.cue, level_of(column), not single
+            rows["disparity"] = d.disparity[:, j]
+            rows["direct"] = d.direct[:, j]
+            rows["indirect"] = d.indirect[:, j]
+            rows["std_disparity"] = d.std_disparity[:, j]
+            rows["std_weight"] = d.std_direct[:, j]
+            rows["std_indirect"] = d.std_indirect[:, j]
+            low, high = (
+                (d.direct_ci_low, d.direct_ci_high)
+                if direct
+                else (d.indirect_ci_low, d.indirect_ci_high)
+            )
+            rows["ci_low"], rows["ci_high"] = low[:, j] * scale, high[:, j] * scale
+            if single:
+                for col, values in verdict.items():
+                    rows[col] = values
+            else:  # a level's own test; the verdict is the cue's row above
+                rows["p_value"] = d.direct_p[:, j] if direct else d.indirect_p[:, j]
+                rows["q_value"] = np.nan
+                rows["statistic"] = np.nan
+                rows["flagged"] = None
+            rows["assessable"] = fl.assessable
+            rows["reason"] = [r or None for r in d.reason]
+            out.append(rows)
+    return out
+
+
 def forbidden_findings(config: Config, w: StoredWindows) -> tuple[pd.DataFrame, pd.DataFrame]:
     """Direct and proxy findings for every decision-maker window and forbidden cue."""
     idx = np.flatnonzero(w.meta["scope"].to_numpy() == "decision_maker")
@@ -179,49 +243,17 @@ def forbidden_findings(config: Config, w: StoredWindows) -> tuple[pd.DataFrame, 
         flags_proxy = flag_forbidden(decomps, tolerance=proxy_tol, **rule)
     else:
         flags_proxy = flags
-    names = list(w.fits.names)
     frames, proxies = [], []
     for d, fl, flp in zip(decomps, flags, flags_proxy, strict=True):
+        frames += _forbidden_rows(w, idx, d, fl, flp)
         for j, column in enumerate(d.columns):
-            level = level_of(column)
-            col = names.index(column)
-            scale = _std_scale(w, col)[idx]
-            for kind in ("forbidden_direct", "forbidden_proxy"):
-                rows = _base_rows(
-                    w.meta.iloc[idx].reset_index(drop=True), np.arange(len(idx)), kind
-                )
-                rows["cue"] = d.cue
-                rows["level"] = level
-                rows["disparity"] = d.disparity[:, j]
-                rows["direct"] = d.direct[:, j]
-                rows["indirect"] = d.indirect[:, j]
-                rows["std_disparity"] = d.std_disparity[:, j]
-                rows["std_weight"] = d.std_direct[:, j]
-                rows["std_indirect"] = d.std_indirect[:, j]
-                if kind == "forbidden_direct":
-                    rows["ci_low"] = d.direct_ci_low[:, j] * scale
-                    rows["ci_high"] = d.direct_ci_high[:, j] * scale
-                    rows["p_value"] = d.direct_p[:, j]
-                    rows["q_value"] = fl.q_value
-                    rows["statistic"] = d.joint_F
-                    rows["flagged"] = fl.flagged
-                else:
-                    rows["ci_low"] = d.indirect_ci_low[:, j] * scale
-                    rows["ci_high"] = d.indirect_ci_high[:, j] * scale
-                    rows["p_value"] = d.indirect_p[:, j]
-                    rows["q_value"] = flp.proxy_q_value
-                    rows["statistic"] = d.indirect_joint_F
-                    rows["flagged"] = flp.proxy_flagged
-                rows["assessable"] = fl.assessable
-                rows["reason"] = [r or None for r in d.reason]
-                frames.append(rows)
             for pi, proxy in enumerate(d.proxies):
                 proxies.append(
                     pd.DataFrame(
                         {
                             "decision_maker": w.meta["decision_maker"].to_numpy()[idx],
                             "cue": d.cue,
-                            "level": level,
+                            "level": level_of(column),
                             "window_end": ends,
                             "proxy_cue": proxy,
                             "part": d.proxy_parts[:, j, pi],
@@ -229,7 +261,10 @@ def forbidden_findings(config: Config, w: StoredWindows) -> tuple[pd.DataFrame, 
                         }
                     )
                 )
-    return pd.concat(frames, ignore_index=True), pd.concat(proxies, ignore_index=True)
+    proxy_rows = (
+        pd.concat(proxies, ignore_index=True) if proxies else pd.DataFrame(columns=PROXY_COLUMNS)
+    )
+    return pd.concat(frames, ignore_index=True), proxy_rows
 
 
 def _previous_window(meta: pd.DataFrame, length_days: int) -> np.ndarray:
@@ -246,8 +281,10 @@ def _previous_window(meta: pd.DataFrame, length_days: int) -> np.ndarray:
 
 
 def drift_findings(config: Config, w: StoredWindows) -> pd.DataFrame:
-    """Per-cue and joint Wald tests of weight change against the previous
-    non-overlapping window of the same series."""
+    """Wald tests of weight change against the previous non-overlapping window of the
+    same series: one verdict per cue (a categorical cue's joint test over its dummies,
+    with its levels as ``level_detail`` rows beneath), and the joint test over all cues
+    (reported, not alerted)."""
     prev = _previous_window(w.meta, config.windows.length_days)
     cur = np.flatnonzero(prev >= 0)
     if not len(cur):
@@ -263,32 +300,57 @@ def drift_findings(config: Config, w: StoredWindows) -> pd.DataFrame:
     min_std = config.policy.drift_min_std_change
     frames = []
     names = list(w.fits.names)
-    for j, column in enumerate(names):
-        rows = _base_rows(w.meta, cur, "drift")
-        scale = _std_scale(w, j)[cur]
-        rows["cue"] = column
-        rows["level"] = None
-        rows["direct"] = drift.change[:, j]
-        rows["std_weight"] = drift.change[:, j] * scale
-        half = normal_half_width(drift.std_error[:, j] * scale, 0.05)
-        rows["ci_low"] = rows["std_weight"] - half
-        rows["ci_high"] = rows["std_weight"] + half
-        rows["p_value"] = drift.p_value[:, j]
-        rows["statistic"] = drift.z[:, j]
-        ok = np.isfinite(drift.p_value[:, j]) & both_large
-        with np.errstate(invalid="ignore"):
-            rows["flagged"] = (
-                ok
-                & (drift.p_value[:, j] < alpha)
-                & (np.abs(rows["std_weight"].to_numpy()) >= min_std)
+    for cue in dict.fromkeys(cue_of(n) for n in names):
+        columns = cue_columns(names, cue)
+        single = len(columns) == 1
+        levels = []
+        for j in columns:
+            rows = _base_rows(w.meta, cur, "drift")
+            scale = _std_scale(w, j)[cur]
+            rows["cue"], rows["level"] = cue, level_of(names[j])
+            rows["level_detail"] = not single
+            rows["direct"] = drift.change[:, j]
+            rows["std_weight"] = drift.change[:, j] * scale
+            half = normal_half_width(drift.std_error[:, j] * scale, 0.05)
+            rows["ci_low"] = rows["std_weight"] - half
+            rows["ci_high"] = rows["std_weight"] + half
+            rows["p_value"] = drift.p_value[:, j]
+            rows["statistic"] = drift.z[:, j]
+            ok = np.isfinite(drift.p_value[:, j]) & both_large
+            rows["assessable"] = ok
+            rows["reason"] = [r or None for r in drift.reason]
+            if single:
+                with np.errstate(invalid="ignore"):
+                    rows["flagged"] = (
+                        ok
+                        & (drift.p_value[:, j] < alpha)
+                        & (np.abs(rows["std_weight"].to_numpy()) >= min_std)
+                    )
+                _since_when(rows, w, cur, [j], config.windows.length_days)
+            else:
+                rows["flagged"] = None
+            levels.append(rows)
+        if not single:
+            frames.append(
+                _cue_drift_row(
+                    w,
+                    cur,
+                    first,
+                    second,
+                    columns,
+                    cue,
+                    alpha,
+                    min_std,
+                    both_large,
+                    drift.reason,
+                    config.windows.length_days,
+                )
             )
-        rows["assessable"] = ok
-        rows["reason"] = [r or None for r in drift.reason]
-        _since_when(rows, w, cur, j, config.windows.length_days)
-        frames.append(rows)
+        frames += levels
     joint = _base_rows(w.meta, cur, "drift")
     joint["cue"] = JOINT
     joint["level"] = None
+    joint["level_detail"] = False
     joint["p_value"] = drift.joint_p
     joint["statistic"] = drift.joint_stat
     joint["flagged"] = False  # reported, not alerted: per-cue findings are actionable
@@ -298,6 +360,34 @@ def drift_findings(config: Config, w: StoredWindows) -> pd.DataFrame:
     return pd.concat(frames, ignore_index=True)
 
 
+def _cue_drift_row(
+    w, cur, first, second, columns, cue, alpha, min_std, both_large, reason, length
+) -> pd.DataFrame:
+    """A categorical cue's drift verdict: the joint Wald test over its dummies, sized by
+    the reference-invariant change sqrt(d' S d) / sd(Ys) (S the dummies' covariance in
+    the current window: the spread of the judgment the change moves)."""
+    stat, df, p = cue_drift(first, second, columns)
+    rows = _base_rows(w.meta, cur, "drift")
+    rows["cue"], rows["level"], rows["level_detail"] = cue, None, False
+    idx = np.asarray(columns)
+    k = len(w.fits.names)
+    co = w.moments.comoment[cur]
+    change = np.nan_to_num(first.weights[:, idx] - second.weights[:, idx])
+    with np.errstate(invalid="ignore", divide="ignore"):
+        spread = np.einsum("mi,mij,mj->m", change, co[:, idx][:, :, idx], change)
+        size = np.sqrt(np.maximum(spread, 0.0) / co[:, k, k])
+    size = np.where(np.isfinite(p), size, np.nan)
+    rows["std_weight"] = size
+    rows["p_value"], rows["statistic"] = p, stat
+    ok = np.isfinite(p) & both_large
+    with np.errstate(invalid="ignore"):
+        rows["flagged"] = ok & (p < alpha) & (size >= min_std)
+    rows["assessable"] = ok
+    rows["reason"] = [r or None for r in reason]
+    _since_when(rows, w, cur, list(columns), length)
+    return rows
+
+
 def _floor_interval(rows: pd.DataFrame, check) -> None:
     """The floor check's interval (and bias-adjusted estimate) beside its statistic."""
     if check.ci_low is not None:
@@ -305,9 +395,12 @@ def _floor_interval(rows: pd.DataFrame, check) -> None:
         rows["ci_low"], rows["ci_high"] = check.ci_low, check.ci_high
 
 
-def _since_when(rows: pd.DataFrame, w: StoredWindows, cur: np.ndarray, j: int, length: int) -> None:
-    """For each flagged drift row, when weight ``j`` most likely changed (change-point
-    estimate and interval over the series' windows up to that one)."""
+def _since_when(
+    rows: pd.DataFrame, w: StoredWindows, cur: np.ndarray, columns: list[int], length: int
+) -> None:
+    """For each flagged drift row, when the weight most likely changed (change-point
+    estimate and interval over the series' windows up to that one).  For a categorical
+    cue the level whose weight moved most (largest |change| / SE) stands for the cue."""
     out = {c: [pd.NaT] * len(rows) for c in ("change_day", "change_low", "change_high")}
     flagged = np.flatnonzero(rows["flagged"].to_numpy(dtype=bool))
     if len(flagged):
@@ -318,6 +411,7 @@ def _since_when(rows: pd.DataFrame, w: StoredWindows, cur: np.ndarray, j: int, l
         for r in flagged:
             i = cur[r]
             same = np.flatnonzero((series == series[i]) & (day <= day[i]))
+            j = _moved_most(w, same, columns)
             cp = change_point(
                 day[same], w.fits.weights[same, j], w.fits.std_errors[same, j], length
             )
@@ -326,6 +420,17 @@ def _since_when(rows: pd.DataFrame, w: StoredWindows, cur: np.ndarray, j: int, l
                     out[col][r] = pd.Timestamp(np.datetime64(int(value), "D"))
     for col, values in out.items():
         rows[col] = pd.to_datetime(pd.Series(values, dtype="datetime64[ns]")).dt.date.to_numpy()
+
+
+def _moved_most(w: StoredWindows, series: np.ndarray, columns: list[int]) -> int:
+    """Of ``columns``, the one whose weight changed most between the series' first and
+    last window, in units of its last standard error."""
+    if len(columns) == 1:
+        return columns[0]
+    b, se = w.fits.weights[series][:, columns], w.fits.std_errors[series][:, columns]
+    with np.errstate(invalid="ignore", divide="ignore"):
+        moved = np.abs(b[-1] - b[0]) / se[-1]
+    return columns[int(np.nanargmax(np.where(np.isfinite(moved), moved, -1.0)))]
 
 
 def floor_findings(config: Config, w: StoredWindows) -> pd.DataFrame:
@@ -383,6 +488,8 @@ def evaluate(con, config: Config) -> tuple[pd.DataFrame, pd.DataFrame]:
         pd.concat(parts, ignore_index=True) if parts else pd.DataFrame(columns=FINDING_COLUMNS)
     )
     findings = findings.reindex(columns=FINDING_COLUMNS)
+    findings["level_detail"] = findings["level_detail"].astype("boolean").fillna(False)
+    findings["level_detail"] = findings["level_detail"].astype(bool)
     _below_policy_minimum(findings, config.policy.min_rows)
     return findings, proxies
 
@@ -394,7 +501,8 @@ def _below_policy_minimum(findings: pd.DataFrame, min_rows: int) -> None:
     small = (n < min_rows) & (findings["check_kind"] != "achievement").to_numpy()
     if not small.any():
         return
-    findings.loc[small, "flagged"] = False
+    detail = findings["level_detail"].fillna(False).astype(bool).to_numpy()
+    findings.loc[small & ~detail, "flagged"] = False
     findings.loc[small, "assessable"] = False
     note = f"below the policy minimum of {min_rows} decisions: shown, not assessed"
     old = findings.loc[small, "reason"]

@@ -20,7 +20,7 @@ from monitor.stats.design import cue_of
 from monitor.stats.lens import CUE_FIGURES, LENS_FIGURES, fit_lens_or_rows
 from monitor.stats.moments import Moments, moments_from_rows
 from monitor.stats.monitoring import forbidden_cue_limit
-from monitor.stats.policy import bh_qvalues, forbidden_cue_decomposition, is_flagged
+from monitor.stats.policy import flag_forbidden, forbidden_cue_decomposition
 
 DM_COLUMNS = (
     "scope:str decision_maker:str team:str n_decisions:int n_linked:int R_s R_e r_a G C "
@@ -37,7 +37,7 @@ FORBIDDEN_COLUMNS = (
     "decision_maker:str cue:str disparity direct indirect std_weight ci_low ci_high q_value "
     "flagged:bool n:int direct_se direct_ci_low direct_ci_high p_value std_disparity "
     "std_indirect indirect_ci_low indirect_ci_high indirect_se indirect_p indirect_q_value "
-    "proxy_flagged:bool joint_p_value assessable:bool reason:str"
+    "proxy_flagged:bool joint_p_value assessable:bool reason:str level_detail:bool"
 )
 LOGIT_COLUMNS = (
     "scope:str decision_maker:str cue:str coef std_error z_value p_value odds_ratio or_ci_low "
@@ -132,7 +132,11 @@ def quarter_tables(config: Config, rows, span: tuple[date, date]) -> list[Table]
 
 
 def _forbidden_tables(config: Config, fits, moms, keys: list[str]) -> tuple[Table, Table]:
-    """One row per decision-maker x forbidden design column; BH over all of them."""
+    """One verdict row per decision-maker x forbidden cue, by the alerts' own rule
+    (``stats.policy.flag_forbidden``: the quarter is one look, all its decision-makers
+    and cues one family).  A categorical cue's verdict row (``cue`` = the cue) carries
+    its reference-invariant size and joint test; its levels follow as ``level_detail``
+    rows (``cue`` = the design column) with their own figures and no verdict."""
     policy = config.policy
     cols: dict[str, list] = {c: [] for c, _ in spec(FORBIDDEN_COLUMNS)}
     parts: dict[str, list] = {
@@ -159,21 +163,59 @@ def _forbidden_tables(config: Config, fits, moms, keys: list[str]) -> tuple[Tabl
         "indirect_ci_low": "indirect_ci_low",
         "indirect_ci_high": "indirect_ci_high",
     }
-    for cue in policy.forbidden:
-        d = forbidden_cue_decomposition(moms, fits, cue)
+    decomps = [forbidden_cue_decomposition(moms, fits, cue) for cue in policy.forbidden]
+    limit = forbidden_cue_limit(policy, config.windows)
+    rule = {"fdr": policy.fdr, "p_limit": None if limit is None else limit.p_limit}
+    flags = flag_forbidden(decomps, tolerance=policy.tolerance, **rule)
+    proxy_tol = policy.proxy_tolerance or policy.tolerance
+    flags_proxy = (
+        flags
+        if proxy_tol == policy.tolerance
+        else flag_forbidden(decomps, tolerance=proxy_tol, **rule)
+    )
+
+    def add(values: dict) -> None:
+        for name in cols:
+            cols[name].append(values.get(name))
+
+    for d, fl, flp in zip(decomps, flags, flags_proxy, strict=True):
+        single = len(d.columns) == 1
         for i, key in enumerate(keys):
             ok = d.reason[i] == ""
+            common = {
+                "decision_maker": key,
+                "n": d.n[i],
+                "assessable": ok,
+                "reason": d.reason[i] or None,
+                "joint_p_value": d.joint_p[i] if not single else np.nan,
+            }
+            verdict = {
+                "q_value": fl.q_value[i],
+                "flagged": bool(fl.flagged[i]),
+                "indirect_q_value": flp.proxy_q_value[i],
+                "proxy_flagged": bool(flp.proxy_flagged[i]),
+                "level_detail": False,
+            }
+            if not single:
+                add(
+                    common
+                    | verdict
+                    | {
+                        "cue": d.cue,
+                        "std_weight": d.cue_direct_size[i],
+                        "p_value": d.joint_p[i],
+                        "std_indirect": d.cue_indirect_size[i],
+                        "indirect_p": d.indirect_joint_p[i],
+                    }
+                )
             for j, col in enumerate(d.columns):
-                cols["decision_maker"].append(key)
-                cols["cue"].append(col)
-                for name, field in fields.items():
-                    cols[name].append(getattr(d, field)[i, j])
-                for name, field in scaled.items():
-                    cols[name].append(getattr(d, field)[i, j] * d.std_scale[i, j])
-                cols["joint_p_value"].append(d.joint_p[i] if len(d.columns) > 1 else np.nan)
-                cols["n"].append(d.n[i])
-                cols["assessable"].append(ok)
-                cols["reason"].append(d.reason[i] or None)
+                row = dict(common, cue=col)
+                row |= {name: getattr(d, field)[i, j] for name, field in fields.items()}
+                row |= {
+                    name: getattr(d, field)[i, j] * d.std_scale[i, j]
+                    for name, field in scaled.items()
+                }
+                add(row | (verdict if single else {"level_detail": True}))
                 for p, proxy in enumerate(d.proxies if ok else ()):
                     for name, v in zip(
                         parts,
@@ -181,33 +223,11 @@ def _forbidden_tables(config: Config, fits, moms, keys: list[str]) -> tuple[Tabl
                         strict=True,
                     ):
                         parts[name].append(v)
-    ok = np.array(cols["assessable"], dtype=bool)
-    q = bh_qvalues(np.where(ok, np.array(cols["p_value"], dtype=float), np.nan))
-    size = np.array(cols["std_weight"], dtype=float)
-    # The same rule as the weekly alerts: the quarter is one look at a window of its own.
-    limit = forbidden_cue_limit(policy, config.windows)
-    if limit is None:
-        evidence, level = q, policy.fdr
-    else:
-        evidence, level = np.array(cols["p_value"], dtype=float), limit.p_limit
-    cols["flagged"] = is_flagged(ok, size, evidence, tolerance=policy.tolerance, level=level)
-    cols["q_value"] = q
-    # The proxy verdict, by the same rule in a family of its own (as assess does).
-    indirect_p = np.where(ok, np.array(cols["indirect_p"], dtype=float), np.nan)
-    indirect_q = bh_qvalues(indirect_p)
-    proxy_evidence = indirect_q if limit is None else indirect_p
-    cols["proxy_flagged"] = is_flagged(
-        ok,
-        np.array(cols["std_indirect"], dtype=float),
-        proxy_evidence,
-        tolerance=policy.proxy_tolerance or policy.tolerance,
-        level=level,
-    )
-    cols["indirect_q_value"] = indirect_q
     return (
         table_from_columns(
             "forbidden_cues",
-            "Forbidden-cue use: disparity = direct + indirect",
+            "Forbidden-cue use over the whole quarter: disparity = direct + indirect "
+            "(one verdict per cue; a categorical cue's levels follow as detail rows)",
             FORBIDDEN_COLUMNS,
             cols,
         ),

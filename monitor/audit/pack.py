@@ -29,6 +29,7 @@ from monitor.audit.asof import alerts_table, coverage_table, history_table, rest
 from monitor.audit.figures import quarter_tables
 from monitor.audit.formats import Table, write_csv, write_parquet, write_workbook
 from monitor.audit.report import methodology_text, write_html
+from monitor.audit.verdicts import fetch_window_findings, window_findings_table
 from monitor.config import Config
 from monitor.errors import UserError
 from monitor.refit.buckets import design_expressions
@@ -292,6 +293,7 @@ def snapshot(config: Config, quarter: str, as_of: str) -> Snapshot:
         coverage_table(rows, quarantine),
     ]
     tables.append(history_table(history))
+    tables.append(window_findings_table(fetch_window_findings(config, first, last, as_of)))
     return Snapshot(as_of, rows, tables, fp)
 
 

@@ -248,8 +248,11 @@ class ForbiddenEvidence:
 
     ``rows``: decision_maker, team, cue, level, window_start, window_end, n, disparity,
     direct, indirect (judgment units), std_disparity, std_weight (direct, standardised)
-    with ci_low/ci_high, std_indirect with indirect_ci_low/high, q_direct, q_indirect,
-    flagged_direct, flagged_indirect, assessable, reason.  ``proxies``: the per-proxy
+    with ci_low/ci_high, std_indirect with indirect_ci_low/high, p_/q_direct,
+    p_/q_indirect, flagged_direct, flagged_indirect, assessable, reason.  One verdict per
+    cue: a categorical cue's first row (level NULL) carries its verdict (reference-
+    invariant size, joint test); its ``level_detail`` rows follow with their own
+    figures and no verdict (flagged NULL), as the stored findings hold them.  ``proxies``: the per-proxy
     parts of the indirect effect for the same windows (decision_maker, cue, level,
     proxy_cue, part, std_part).
     """
@@ -267,17 +270,22 @@ def forbidden_evidence(config: Config, team: str | None = None) -> ForbiddenEvid
             WHERE scope = 'decision_maker' AND check_kind IN ('forbidden_direct', 'forbidden_proxy')
               {team_filter}
             QUALIFY window_end = max(window_end) OVER (PARTITION BY decision_maker))
-        SELECT d.decision_maker, d.team, d.cue, d.level, d.window_start, d.window_end, d.n,
+        SELECT d.decision_maker, d.team, d.cue, d.level, d.level_detail,
+               d.window_start, d.window_end, d.n,
                d.disparity, d.direct, d.indirect, d.std_disparity, d.std_weight,
                d.ci_low, d.ci_high, p.std_indirect, p.ci_low AS indirect_ci_low,
-               p.ci_high AS indirect_ci_high, d.q_value AS q_direct, p.q_value AS q_indirect,
-               coalesce(d.flagged, FALSE) AS flagged_direct,
-               coalesce(p.flagged, FALSE) AS flagged_indirect, d.assessable, d.reason
+               p.ci_high AS indirect_ci_high, d.p_value AS p_direct, d.q_value AS q_direct,
+               p.p_value AS p_indirect, p.q_value AS q_indirect,
+               CASE WHEN NOT d.level_detail THEN coalesce(d.flagged, FALSE) END
+                   AS flagged_direct,
+               CASE WHEN NOT d.level_detail THEN coalesce(p.flagged, FALSE) END
+                   AS flagged_indirect,
+               d.assessable, d.reason
         FROM latest d LEFT JOIN latest p
           ON p.check_kind = 'forbidden_proxy' AND p.decision_maker = d.decision_maker
          AND p.cue = d.cue AND p.level IS NOT DISTINCT FROM d.level
         WHERE d.check_kind = 'forbidden_direct'
-        ORDER BY d.decision_maker, d.cue, d.level"""
+        ORDER BY d.decision_maker, d.cue, d.level NULLS FIRST"""
     proxies_sql = f"""
         SELECT p.decision_maker, p.cue, p.level, p.proxy_cue, p.part, p.std_part
         FROM policy_proxy_parts p

@@ -64,15 +64,7 @@ def weight_drift(first: LensFits, second: LensFits) -> WeightDrift:
         se = np.where(both, np.sqrt(var), np.nan)
         z = change / se
     p = normal_two_sided_p(z)
-    # Columns outside the common set become identity rows with zero change, so every
-    # window solves at full size and the skipped columns add nothing to the statistic.
-    mask2 = both[:, :, None] & both[:, None, :]
-    eye = np.eye(b1.shape[1], dtype=bool)[None]
-    v = np.where(mask2, np.nan_to_num(v1 + v2), np.where(eye, 1.0, 0.0))
-    d = np.where(both, change, 0.0)
-    df = both.sum(axis=1)
-    sol, ok = batched_solve(v, d, df > 0)
-    joint = np.where(ok, np.einsum("mi,mi->m", d, np.nan_to_num(sol)), np.nan)
+    joint, df, ok = _joint_wald(change, both, v1 + v2)
     reason = np.full(len(df), "", dtype=object)
     reason[~fitted] = "a window of the pair was not fitted"
     reason[fitted & (df == 0)] = "no cue estimable in both windows"
@@ -88,6 +80,42 @@ def weight_drift(first: LensFits, second: LensFits) -> WeightDrift:
         joint_p=stats.chi2.sf(joint, np.maximum(df, 1)),
         reason=reason,
     )
+
+
+def _joint_wald(
+    change: np.ndarray, both: np.ndarray, v: np.ndarray
+) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """d' V^-1 d per row over the columns marked in ``both``: (statistic, df, solved)."""
+    # Columns outside the common set become identity rows with zero change, so every
+    # window solves at full size and the skipped columns add nothing to the statistic.
+    mask2 = both[:, :, None] & both[:, None, :]
+    eye = np.eye(both.shape[1], dtype=bool)[None]
+    v = np.where(mask2, np.nan_to_num(v), np.where(eye, 1.0, 0.0))
+    d = np.where(both, change, 0.0)
+    df = both.sum(axis=1)
+    sol, ok = batched_solve(v, d, df > 0)
+    return np.where(ok, np.einsum("mi,mi->m", d, np.nan_to_num(sol)), np.nan), df, ok
+
+
+def cue_drift(
+    first: LensFits, second: LensFits, columns: list[int]
+) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """The joint Wald test of change over one cue's design columns (a categorical cue's
+    dummies), the same test as ``weight_drift``'s joint one restricted to ``columns``:
+    (statistic, df, p from chi2(df)), NaN where no column is estimable in both windows.
+    One verdict per cue does not depend on which level is the reference."""
+    idx = np.asarray(columns, dtype=int)
+    b1 = np.asarray(first.weights, float)[:, idx]
+    b2 = np.asarray(second.weights, float)[:, idx]
+    v1 = np.asarray(first.cov, float)[:, idx][:, :, idx]
+    v2 = np.asarray(second.cov, float)[:, idx][:, :, idx]
+    both = np.asarray(first.estimable)[:, idx] & np.asarray(second.estimable)[:, idx]
+    both &= np.isfinite(b1) & np.isfinite(b2)
+    fitted = (judge_reasons(first) == "") & (judge_reasons(second) == "")
+    both &= fitted[:, None]
+    stat, df, ok = _joint_wald(np.where(both, b1 - b2, np.nan), both, v1 + v2)
+    p = np.where(ok & (df > 0), stats.chi2.sf(stat, np.maximum(df, 1)), np.nan)
+    return np.where(df > 0, stat, np.nan), df, p
 
 
 @dataclass(frozen=True)

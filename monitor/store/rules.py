@@ -2,7 +2,8 @@
 
 * which outcome counts for a decision (the latest ingested; ties: the later batch, then
   the later line, a missing line ranking first);
-* the as-of filter of the audit pack (rows ingested by a moment);
+* the as-of filter of the audit pack (rows ingested by a moment) and which version of a
+  policy finding stood at a moment;
 * identifier quoting and literals for SQL built from configuration strings;
 * the store's clock (every stored timestamp is UTC).
 """
@@ -73,6 +74,21 @@ def current_outcome_rows_sql(where: str | None = None, *, count_versions: bool =
 def ingested_by(column: str = "ingested_at") -> str:
     """The as-of predicate: the row had arrived by the moment bound to its ``?``."""
     return f"{column} <= ?::TIMESTAMPTZ"
+
+
+# --- versions of the policy findings ---------------------------------------------------
+
+# A stored finding is current until a later assessment supersedes it.
+CURRENT_VERSION = "superseded_at IS NULL"
+
+
+def version_known_at(prefix: str = "") -> str:
+    """The as-of predicate of a versioned finding: it had been evaluated by the moment
+    bound to its two ``?`` (the same moment twice) and not yet superseded then."""
+    return (
+        f"{prefix}evaluated_at <= ?::TIMESTAMPTZ AND ({prefix}superseded_at IS NULL "
+        f"OR {prefix}superseded_at > ?::TIMESTAMPTZ)"
+    )
 
 
 # --- names the store keeps for itself -------------------------------------------------

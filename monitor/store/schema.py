@@ -18,7 +18,12 @@ import duckdb
 
 from monitor import __version__
 from monitor.errors import UserError
-from monitor.store.rules import current_outcome_rows_sql, quote_ident, utc_now
+from monitor.store.rules import (
+    CURRENT_VERSION,
+    current_outcome_rows_sql,
+    quote_ident,
+    utc_now,
+)
 
 SCHEMA_VERSION_TABLE = "schema_migrations"
 
@@ -279,6 +284,30 @@ MIGRATIONS: list[tuple[int, str, list[str]]] = [
             )""",
         ],
     ),
+    (
+        7,
+        "policy findings keep their history: every version of a finding with the time it "
+        "was first evaluated and the time a later evaluation superseded it; the current "
+        "findings are a view",
+        [
+            # A finding (and a proxy part) is versioned: an assessment that reproduces a
+            # stored row keeps it; one that changes or drops it sets its superseded_at
+            # and adds the new version.  row_hash identifies a version (key and figures,
+            # floats to ~12 digits); level_detail marks the per-level rows of a
+            # categorical cue, which carry their own figures beneath the cue's verdict.
+            "ALTER TABLE policy_findings RENAME TO finding_versions",
+            "ALTER TABLE finding_versions ADD COLUMN level_detail BOOLEAN DEFAULT FALSE",
+            "ALTER TABLE finding_versions ADD COLUMN superseded_at TIMESTAMPTZ",
+            "ALTER TABLE finding_versions ADD COLUMN row_hash UBIGINT",
+            "ALTER TABLE policy_proxy_parts RENAME TO proxy_part_versions",
+            "ALTER TABLE proxy_part_versions ADD COLUMN superseded_at TIMESTAMPTZ",
+            "ALTER TABLE proxy_part_versions ADD COLUMN row_hash UBIGINT",
+            "CREATE VIEW policy_findings AS SELECT * FROM finding_versions "
+            f"WHERE {CURRENT_VERSION}",
+            "CREATE VIEW policy_proxy_parts AS SELECT * FROM proxy_part_versions "
+            f"WHERE {CURRENT_VERSION}",
+        ],
+    ),
 ]
 
 
@@ -378,10 +407,14 @@ def check_ready(con: duckdb.DuckDBPyConnection, config: CueSource) -> str | None
 _CUE_NEIGHBOURS = ("decisions", "outcomes")
 
 
+# Views over the policy findings: cues never share a query with them.
+_FINDING_VIEWS = ("policy_findings", "policy_proxy_parts")
+
+
 @functools.cache
 def reserved_column_names() -> frozenset[str]:
     """The names a cue cannot take, lower-case (DuckDB's identifiers ignore case): every
-    column of ``decisions``, ``outcomes`` and every view, read from the migrations
+    column of ``decisions``, ``outcomes`` and every view over them, read from the migrations
     themselves (run on an empty in-memory database, ~0.1 s once per process), so a
     column a later migration adds is reserved without a second list to keep."""
     con = duckdb.connect(":memory:", config={"threads": 1})
@@ -396,7 +429,7 @@ def reserved_column_names() -> frozenset[str]:
             ).fetchall()
         ]
         names: set[str] = set()
-        for table in (*_CUE_NEIGHBOURS, *views):
+        for table in (*_CUE_NEIGHBOURS, *(v for v in views if v not in _FINDING_VIEWS)):
             described = con.execute(f"SELECT * FROM {quote_ident(table)} LIMIT 0").description
             names.update(col[0].lower() for col in described)
     finally:
