@@ -196,13 +196,70 @@ def fits(
     obj: Context, decision_maker: str | None, latest: bool, scope: str | None, as_json: bool
 ) -> None:
     """Show stored window fits: weights, consistency, achievement."""
+    from monitor.people import check_name
     from monitor.refit.fits_read import describe_fits, read_fits
 
+    if decision_maker is not None:
+        check_name(obj.config, decision_maker)  # a mistyped name is an error, not "no fits"
     rows = read_fits(obj.config, decision_maker=decision_maker, latest=latest, scope=scope)
     if as_json:
         print_json(rows)
         return
-    click.echo(describe_fits(rows, binary_judgment=obj.config.judgment_is_binary))
+    cfg = obj.config
+    forbidden = cfg.policy.forbidden
+    click.echo(describe_fits(rows, binary_judgment=cfg.judgment_is_binary, forbidden=forbidden))
+
+
+@main.command()
+@click.option("--json", "as_json", is_flag=True, help="Print the lists as JSON.")
+@click.pass_obj
+@handles_user_errors
+def people(obj: Context, as_json: bool) -> None:
+    """List the decision-makers and teams in the store: volume, days, latest R_s, alerts."""
+    from monitor.people import roster
+
+    result = roster(obj.config)
+    print_json(result.to_json()) if as_json else click.echo(result.describe())
+
+
+@main.command()
+@click.argument("first")
+@click.argument("second", required=False)
+@click.option("--window-end", help="The window whose weights are listed (default: the latest).")
+@click.option("--windows", type=int, default=12, show_default=True, help="Windows shown (0 = all).")
+@click.option("--json", "as_json", is_flag=True, help="Print every window as JSON.")
+@click.pass_obj
+@handles_user_errors
+def compare(obj, first: str, second: str | None, window_end, windows: int, as_json: bool) -> None:
+    """Compare FIRST with SECOND, or with the rest of FIRST's team, window by window."""
+    from monitor.refit.compare import compare as run_compare
+
+    result = run_compare(obj.config, first, second)
+    if as_json:
+        print_json(result.to_json())
+        return
+    click.echo(result.describe(window_end=window_end, shown=windows))
+
+
+@main.command()
+@click.argument("decision_maker")
+@click.option("--out", type=click.Path(dir_okay=False), help="CSV or XLSX file to write.")
+@click.option("--format", "fmt", type=click.Choice(["csv", "xlsx"]), help="Default: from --out.")
+@click.option("--json", "as_json", is_flag=True, help="Print the rows as JSON.")
+@click.pass_obj
+@handles_user_errors
+def weights(obj: Context, decision_maker: str, out, fmt, as_json: bool) -> None:
+    """One decision-maker's cue weights window by window, as CSV or XLSX for a report."""
+    from monitor.refit import weight_history as wh
+
+    if not out and not as_json:  # the CSV itself on stdout
+        click.echo(wh.weight_history_bytes(obj.config, decision_maker, "csv").decode(), nl=False)
+        return
+    if out:
+        result = wh.export_weight_history(obj.config, decision_maker, Path(out), fmt)
+    else:
+        result = wh.WeightHistory(wh.weight_history(obj.config, decision_maker))
+    print_json(result.to_json()) if as_json else click.echo(result.describe())
 
 
 @main.command()
@@ -287,23 +344,41 @@ def assess(obj: Context, force: bool, as_json: bool) -> None:
         fail(summary.delivery_problem().strip(), EXIT_NOT_DELIVERED)
 
 
-@main.command()
+@main.group(invoke_without_command=True)
 @click.option(
     "--state", type=click.Choice(["open", "acknowledged", "resolved"]), help="Only this state."
 )
+@click.option("--person", help="Only alerts on this decision-maker.")
+@click.option("--team", help="Only alerts on this team or its members.")
+@click.option("--kind", help="Only this kind (forbidden_cue, proxy_use, drift, ...).")
 @click.option("--history", is_flag=True, help="Include each alert's state history.")
 @click.option("--json", "as_json", is_flag=True, help="Print the alerts as a JSON array.")
+@click.pass_context
+@handles_user_errors
+def alerts(ctx, state, person, team, kind, history: bool, as_json: bool) -> None:
+    """List alerts (forbidden-cue use, proxies, drift, consistency, achievement);
+    'alerts show ID' explains one."""
+    if ctx.invoked_subcommand is not None:
+        return
+    from monitor.assess.explain import describe_listing, select_alerts
+
+    docs = select_alerts(
+        ctx.obj.config, state=state, person=person, team=team, kind=kind, history=history
+    )
+    print_json(docs) if as_json else click.echo(describe_listing(docs, history=history))
+
+
+@alerts.command("show")
+@click.argument("alert_id", type=int)
+@click.option("--json", "as_json", is_flag=True, help="Print the explanation as JSON.")
 @click.pass_obj
 @handles_user_errors
-def alerts(obj: Context, state: str | None, history: bool, as_json: bool) -> None:
-    """List alerts (forbidden-cue use, proxies, drift, consistency, achievement)."""
-    from monitor.assess.alerts import describe_alerts, list_alerts
+def alerts_show(obj: Context, alert_id: int, as_json: bool) -> None:
+    """Why alert ALERT_ID was raised: finding, evidence, series, proxies, history."""
+    from monitor.assess.explain import explain_alert
 
-    docs = list_alerts(obj.config, state, history=history)
-    if as_json:
-        print_json(docs)
-        return
-    click.echo(describe_alerts(docs))
+    result = explain_alert(obj.config, alert_id)
+    print_json(result.to_json()) if as_json else click.echo(result.describe())
 
 
 @main.command()

@@ -82,6 +82,30 @@ def merge(a: Moments, b: Moments) -> Moments:
     return Moments(n, mean, comoment)
 
 
+def remove(whole: Moments, part: Moments) -> Moments:
+    """The rows of ``whole`` that are not in ``part`` (a subset of them), element by element:
+    the pairwise update run backwards.
+
+    n = n_w - n_p;  mean = (n_w mean_w - n_p mean_p) / n;
+    M = M_w - M_p - delta delta^T * n n_p / n_w,  delta = mean_p - mean.
+    Where nothing is left (n <= 0) the result is the empty set.  Digits are lost as the
+    part's share of the whole grows (a difference of nearly equal sums), so a part that is
+    almost all of the whole leaves a remainder with few good digits.
+    """
+    n = whole.n - part.n
+    left = n > 0
+    safe = np.where(left, n, 1.0)
+    mean = (whole.mean * whole.n[:, None] - part.mean * part.n[:, None]) / safe[:, None]
+    delta = part.mean - mean
+    w = (safe * part.n / np.where(whole.n > 0, whole.n, 1.0))[:, None, None]
+    comoment = whole.comoment - part.comoment - w * (delta[:, :, None] * delta[:, None, :])
+    return Moments(
+        np.where(left, n, 0.0),
+        np.where(left[:, None], mean, 0.0),
+        np.where(left[:, None, None], comoment, 0.0),
+    )
+
+
 def group_sums(bucket: Moments, group: np.ndarray, n_groups: int) -> Moments:
     """Merged moments per group: result ``g`` merges every bucket with ``group == g``
     (any order; a group without members gives n = 0).
