@@ -6,6 +6,9 @@ import streamlit as st
 
 from dashboards import charts, ui
 from monitor.dashboard import data as dd
+from monitor.dashboard import person as dp
+from monitor.errors import UserError
+from monitor.refit.compare import TEST_NAME as compare_test
 from monitor.refit.fits_read import CUE_FIELDS
 
 st.title("One decision-maker")
@@ -62,5 +65,63 @@ with st.expander("Latest window: weights table", expanded=True):
         column_config={c: st.column_config.NumberColumn(c, format="%.3f") for c in numbers}
         | {"n_decisions": st.column_config.NumberColumn("n")},
     )
+st.subheader("Compared with the team or a colleague")
+others = [n for n in names if n != who]
+choice = st.selectbox("Compare with", [dp.TEAM_CHOICE, *others], key="compare_with")
+other = None if choice == dp.TEAM_CHOICE else choice
+try:
+    cmp = ui.load(dp.comparison, who, other)
+except UserError as exc:  # no team, no common window
+    st.info(ui.md(exc))
+    cmp = None
+if cmp is not None:
+    ends = [w["window_end"] for w in cmp.windows]
+    end = st.selectbox("Window ending", ends[::-1], key="compare_window")
+    picked = cmp.window(end)
+    weights_cmp, lens_cmp = dp.comparison_tables(cmp, end)
+    st.markdown(
+        f"**{ui.md(who)}** against **{ui.md(cmp.second_label)}**, window "
+        f"{ui.md(picked['window_start'])} to {ui.md(picked['window_end'])} "
+        f"(n = {picked['n_first']} and {picked['n_second']} decisions)"
+    )
+    st.dataframe(
+        weights_cmp,
+        hide_index=True,
+        width="stretch",
+        column_config={
+            c: st.column_config.NumberColumn(c, format="%.4g")
+            for c in weights_cmp.columns
+            if c not in ("cue", "forbidden")
+        },
+    )
+    st.caption(ui.md(f"Test of each difference: {compare_test}."))
+    for note in cmp.notes:
+        st.caption(ui.md(note))
+    with st.expander("R_s, r_a and G side by side, every common window"):
+        st.dataframe(lens_cmp, hide_index=True, width="stretch")
+
+st.subheader("Weights over time, for a report")
+st.caption(
+    "One row per window and cue: weight, standard error, 95% interval, standardised "
+    "weight, p-value, and the days each window holds data (partial windows marked)."
+)
+left, right = st.columns(2)
+for col, fmt, mime in (
+    (left, "csv", "text/csv"),
+    (right, "xlsx", "application/vnd.openxmlformats-officedocument.spreadsheetml.sheet"),
+):
+    try:
+        payload = ui.load(dp.weights_file, who, fmt)
+    except UserError as exc:
+        col.info(ui.md(exc))
+        continue
+    col.download_button(
+        f"Download the weight history ({fmt.upper()})",
+        payload,
+        file_name=f"weights-{who}.{fmt}",
+        mime=mime,
+        key=f"weights_{fmt}",
+    )
+
 with st.expander("Alerts for this decision-maker"):
     st.dataframe(hist.alert_spans, hide_index=True, width="stretch")
