@@ -66,7 +66,8 @@ def parse_as_of(text: str | None, timezone: str) -> tuple[datetime, bool]:
     """The as-of instant in UTC and whether it defaulted to now.
 
     ISO 8601; a time without an offset is read in ``timezone`` (the decisions' zone,
-    as ingest does); a bare date means 00:00 that day.
+    as ingest does); a bare date means 00:00 that day.  A moment after now is refused:
+    rows may still arrive before it, so the pack could not be rebuilt the same later.
     """
     if text is None or not str(text).strip():
         return utc_now(), True
@@ -78,6 +79,12 @@ def parse_as_of(text: str | None, timezone: str) -> tuple[datetime, bool]:
         ) from None
     if dt.tzinfo is None:
         dt = dt.replace(tzinfo=ZoneInfo(timezone))
+    now = utc_now()
+    if dt > now:
+        raise ExportUsageError(
+            f"--as-of {text.strip()} lies in the future (it is now {iso(now)[:19]} UTC), "
+            "and a pack can only show what had arrived by a moment that has passed."
+        )
     return dt.astimezone(UTC), False
 
 

@@ -42,7 +42,7 @@ from monitor.ingest.writes import (
     quarantine_sql,
 )
 from monitor.store.connection import Store
-from monitor.store.rules import sql_literal, utc_now
+from monitor.store.rules import clock_kind, sql_literal, utc_now
 from monitor.store.schema import drop_temp_tables, empty_temp_table, stage_temp_table
 
 
@@ -230,7 +230,7 @@ def _ingest_one(
         message = str(exc).splitlines()[0] if str(exc) else type(exc).__name__
         batch_id = con.execute("SELECT nextval('batch_ids')").fetchone()[0]
         con.execute(
-            "INSERT INTO batches VALUES (?, ?, ?, ?, ?, ?, 0, 0, 0, 0, ?, ?, 'failed', ?, ?, ?)",
+            "INSERT INTO batches VALUES (?, ?, ?, ?, ?, ?, 0, 0, 0, 0, ?, ?, 'failed', ?, ?, ?, ?)",
             [
                 batch_id,
                 kind,
@@ -243,6 +243,7 @@ def _ingest_one(
                 message,
                 config.digest,
                 __version__,
+                clock_kind(),
             ],
         )
         return FileResult(label, kind, "failed", batch_id=batch_id, message=message)
@@ -426,7 +427,8 @@ def _write_batch(
             f"quarantined {quarantined}, duplicates {duplicates}"
         )
     con.execute(
-        "INSERT INTO batches VALUES (?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, 'ingested', NULL, ?, ?)",
+        "INSERT INTO batches VALUES "
+        "(?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, 'ingested', NULL, ?, ?, ?)",
         [
             batch_id,
             kind,
@@ -442,6 +444,7 @@ def _write_batch(
             utc_now(),
             config.digest,
             __version__,
+            clock_kind(),
         ],
     )
     return FileResult(

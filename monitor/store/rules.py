@@ -5,12 +5,17 @@
 * the as-of filter of the audit pack (rows ingested by a moment) and which version of a
   policy finding stood at a moment;
 * identifier quoting and literals for SQL built from configuration strings;
-* the store's clock (every stored timestamp is UTC).
+* the store's clock (every stored timestamp is UTC; the demo alone may replace it with
+  a simulated one, see ``simulated_clock``).
 """
 
 from __future__ import annotations
 
-from datetime import UTC, datetime
+import time
+from collections.abc import Iterator
+from contextlib import contextmanager
+from contextvars import ContextVar
+from datetime import UTC, datetime, timedelta
 
 
 def quote_ident(name: str) -> str:
@@ -29,8 +34,48 @@ def sql_literal(value: object) -> str:
     return "'" + str(value).replace("'", "''") + "'"
 
 
+# --- the store's clock -----------------------------------------------------------------
+
+# The simulated clock's start and the monotonic reading it was set at, or None: the
+# system clock.  A context variable, not a setting: it is set only by code that calls
+# ``simulated_clock`` (monitor.demo), never by a configuration key, an option or the
+# environment, so a user's store cannot be stamped with invented times.
+_SIMULATED: ContextVar[tuple[datetime, float] | None] = ContextVar(
+    "cuewatch_simulated_clock", default=None
+)
+
+# What ``batches.clock`` records for a file ingested under each clock (migration 9).
+SYSTEM_CLOCK = "system"
+SIMULATED_CLOCK = "simulated"
+
+
 def utc_now() -> datetime:
-    return datetime.now(UTC)
+    """Now, in UTC: the system clock, or inside ``simulated_clock`` the simulated one."""
+    simulated = _SIMULATED.get()
+    if simulated is None:
+        return datetime.now(UTC)
+    start, at = simulated
+    return start + timedelta(seconds=time.monotonic() - at)
+
+
+def clock_kind() -> str:
+    """``SIMULATED_CLOCK`` inside ``simulated_clock``, else ``SYSTEM_CLOCK``."""
+    return SYSTEM_CLOCK if _SIMULATED.get() is None else SIMULATED_CLOCK
+
+
+@contextmanager
+def simulated_clock(start: datetime) -> Iterator[None]:
+    """Within the block (this thread, this context) ``utc_now`` starts at ``start`` and
+    runs on with the real elapsed time, so the order and length of what happens inside
+    stay true.  Used by the demo to play past nights; every batch written meanwhile is
+    recorded with ``clock = 'simulated'``."""
+    if start.tzinfo is None:
+        raise ValueError("a simulated clock needs an aware start time")
+    token = _SIMULATED.set((start.astimezone(UTC), time.monotonic()))
+    try:
+        yield
+    finally:
+        _SIMULATED.reset(token)
 
 
 # --- which outcome counts for a decision ----------------------------------------------

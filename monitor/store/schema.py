@@ -308,6 +308,15 @@ MIGRATIONS: list[tuple[int, str, list[str]]] = [
             f"WHERE {CURRENT_VERSION}",
         ],
     ),
+    (
+        9,
+        "batches: the clock that stamped the batch (system, or simulated by the demo)",
+        [
+            # 'simulated' only for batches the demo plays with its simulated clock
+            # (store.rules.simulated_clock); every earlier batch was stamped by the system.
+            "ALTER TABLE batches ADD COLUMN clock VARCHAR DEFAULT 'system'",
+        ],
+    ),
 ]
 
 
