@@ -1,7 +1,8 @@
 """cuewatch oversight dashboard: `streamlit run dashboards/app.py -- --config FILE`.
 
-Started by `cuewatch dashboard` (monitor.dashboard.data.launch).  Read-only apart from
-acknowledging an alert, which goes through the store's single writer.
+Started by `cuewatch dashboard` (monitor.dashboard.start.launch).  It reads the store;
+acknowledging an alert is its one write, through the store's single writer.  Every page
+has an address of its own (/team, /person, ...); the root opens /team.
 """
 
 from __future__ import annotations
@@ -21,9 +22,19 @@ from dashboards import ui  # noqa: E402
 
 HERE = Path(__file__).resolve().parent
 
+TEAM = st.Page(str(HERE / "page_team.py"), title="Team at a glance", icon=":material/groups:",
+               url_path="team")  # fmt: skip
+
+
+def _root() -> None:
+    """The app's root address opens the team page under its own address, /team (the
+    page Streamlit serves at the root has no other address)."""
+    st.switch_page(TEAM)
+
+
 PAGES = [
-    st.Page(str(HERE / "page_team.py"), title="Team at a glance", icon=":material/groups:",
-            url_path="team", default=True),
+    st.Page(_root, title="cuewatch", url_path="start", default=True, visibility="hidden"),
+    TEAM,
     st.Page(str(HERE / "page_person.py"), title="One decision-maker", icon=":material/person:",
             url_path="person"),
     st.Page(str(HERE / "page_forbidden.py"), title="Forbidden-cue evidence",
@@ -41,5 +52,8 @@ st.set_page_config(
 )
 cfg = ui.config()
 st.sidebar.markdown("**cuewatch oversight**")
-st.sidebar.caption(f"Store: {ui.md(Path(cfg.store.path).name)} · read-only view")
+st.sidebar.caption(
+    f"Store: {ui.md(Path(cfg.store.path).name)} · reads the store; acknowledging an alert "
+    "is the one write"
+)
 st.navigation(PAGES).run()

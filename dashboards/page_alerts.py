@@ -38,16 +38,16 @@ def evidence_line(a: pd.Series) -> str:
 
 
 def show(alert: pd.Series, can_ack: bool) -> None:
-    parts = (alert["kind"], alert["decision_maker"], alert["cue"] or "")
+    parts = (alert["kind"], alert["decision_maker"], alert["cue"] if ui.given(alert["cue"]) else "")
     title = f"\\#{alert['id']} " + " · ".join(ui.md(p) for p in parts)
     with st.expander(title, expanded=can_ack):
         st.markdown(f"**Evidence:** {evidence_line(alert)}")
         st.json(alert["evidence"], expanded=False)
-        if alert["acknowledged_by"]:
-            st.markdown(
-                f"Acknowledged by **{ui.md(alert['acknowledged_by'])}**: "
-                f"{ui.md(alert['note'] or '')}"
-            )
+        if ui.given(alert["acknowledged_by"]):
+            note = f": {ui.md(alert['note'])}" if ui.given(alert["note"]) else " (no note)"
+            st.markdown(f"Acknowledged by **{ui.md(alert['acknowledged_by'])}**{note}")
+        elif alert["state"] == "open":
+            st.caption("Not acknowledged.")
         hist = pd.DataFrame(alert["history"] or [])
         if not hist.empty:
             st.dataframe(hist, hide_index=True, width="stretch")

@@ -66,6 +66,22 @@ else:
     with st.expander("A sample of rejected rows"):
         st.dataframe(health.quarantine_sample, hide_index=True, width="stretch")
 
+st.subheader("Still quarantined: list and re-admit")
+waiting = int(health.waiting_by_reason["rows"].sum()) if len(health.waiting_by_reason) else 0
+ever = int(health.quarantine["rows"].sum()) if len(health.quarantine) else 0
+st.markdown(
+    f"**{waiting:,}** of the {ever:,} quarantined records are still out of the store "
+    f"({ever - waiting:,} re-admitted). `cuewatch quarantine` lists them and, once the "
+    "configuration is fixed, re-admits them through the same checks as ingest."
+)
+if waiting:
+    left, right = st.columns([1, 2])
+    left.caption("By reason")
+    left.dataframe(health.waiting_by_reason, hide_index=True, width="stretch")
+    right.caption("By batch and file")
+    right.dataframe(health.waiting_by_batch, hide_index=True, width="stretch")
+st.code("\n".join(f"# {what}\n{cmd}" for cmd, what in health.commands), language="text")
+
 with st.expander("Batches", expanded=False):
     st.dataframe(health.batches, hide_index=True, width="stretch")
 with st.expander("Coverage table"):

@@ -124,6 +124,14 @@ def md(value: Any) -> str:
     return _MD_PUNCTUATION.sub(r"\\\g<0>", text)
 
 
+def given(value: Any) -> bool:
+    """Whether a cell holds a value: not None, not NaN (pandas 3 reads a missing text
+    cell as NaN, which is truthy) and not blank text."""
+    if value is None or (isinstance(value, float) and value != value):
+        return False
+    return bool(str(value).strip())
+
+
 def caution() -> None:
     """The caution every forbidden-cue view carries."""
     st.warning(CAUTION, icon=":material/balance:")

@@ -267,7 +267,10 @@ def weights(obj: Context, decision_maker: str, out, fmt, as_json: bool) -> None:
 @click.pass_obj
 @handles_user_errors
 def dashboard(obj: Context, port: int) -> None:
-    """Start the oversight dashboard on 127.0.0.1 (read-only; Ctrl-C stops it)."""
+    """Start the oversight dashboard on 127.0.0.1 (Ctrl-C stops it).
+
+    It reads the store; acknowledging an alert on its Alerts page is its one write.
+    """
     from monitor.dashboard.start import launch
 
     sys.exit(launch(obj.config, port=port))
