@@ -326,8 +326,8 @@ def flag_forbidden(
     The BH family is every (window, cue) sharing a ``family`` label (an evaluation id per
     window; default: all m windows form one evaluation).  Direct use is flagged when
     |size| >= tolerance and q <= fdr.  A proxy finding needs |standardised indirect| >=
-    tolerance and its own q <= fdr, its p from the exact conditional test of the
-    indirect part (see ``forbidden_cue_decomposition``); its family is separate so that
+    tolerance and its own q <= fdr, its p from the unconditional (delta-method,
+    Sobel) test of the indirect part (see ``forbidden_cue_decomposition``); its family is separate so that
     reporting proxies cannot dilute or inflate the direct findings.  With ``p_limit``
     (a calibrated control limit, ``monitor.stats.monitoring``) a window is flagged on
     its own p-value instead (p <= p_limit); the q-values are still reported.
