@@ -1,5 +1,6 @@
 """The project's checks on simulated windows, as `assess` runs them on stored ones:
-``forbidden_findings`` and ``drift_findings`` on an in-memory ``StoredWindows``, the
+``forbidden_findings``, ``drift_findings`` and ``floor_findings`` (consistency) on an
+in-memory ``StoredWindows``, the
 policy-minimum rule of ``findings.evaluate``, ``alerts._window_states`` and
 ``episodes``; then the false alerts of the innocent series and the detection delay of
 the planted ones (``benchmarks.bench_alerts``)."""
@@ -22,12 +23,13 @@ from monitor.assess.findings import (
     StoredWindows,
     _below_policy_minimum,
     drift_findings,
+    floor_findings,
     forbidden_findings,
 )
 from monitor.config import Config
 from monitor.stats.episodes import episodes
 
-KINDS = ("forbidden_cue", "proxy_use", "drift")
+KINDS = ("forbidden_cue", "proxy_use", "drift", "consistency")
 
 CALENDAR_START = date(1900, 1, 7)
 
@@ -120,6 +122,7 @@ def evaluate(
     if drift:
         with _change_points(keep=change_points):
             parts.append(drift_findings(config, w))
+        parts.append(floor_findings(config, w))
     findings = pd.concat(parts, ignore_index=True).reindex(columns=FINDING_COLUMNS)
     _below_policy_minimum(findings, config.policy.min_rows)
     states = _window_states(findings)

@@ -14,8 +14,10 @@ The figures the benchmark reports hold for this world, not for every organisatio
   ones change it once, on a day drawn uniformly from the week after a burn-in of two
   window lengths: direct use of ``protected`` at standardised weight 0.10, 0.15 or
   0.25; proxy use (the ``proxy`` weight jumps so that the standardised indirect part
-  is 0.25); or a drift of the ``score`` weight by a standardised 0.15 or 0.25.  Sizes
-  are population values after the change (solved from the cue covariance);
+  is 0.25); a drift of the ``score`` weight by a standardised 0.15 or 0.25; or a loss
+  of consistency (the noise grows so that the population R_s falls to 0.40, below the
+  default floor of 0.5).  Sizes are population values after the change (solved from
+  the cue covariance);
 - 30 decision-makers form an organisation (25 innocent, 5 planted).  Each organisation
   has its own calendar, so the previous scheme's Benjamini-Hochberg family (all
   decision-makers of one window end) is one organisation of 30, as in the demo;
@@ -69,10 +71,17 @@ class Plant:
 
     @property
     def kind(self) -> str:
-        return {"direct": "forbidden_cue", "proxy": "proxy_use", "drift": "drift"}[self.effect]
+        return {
+            "direct": "forbidden_cue",
+            "proxy": "proxy_use",
+            "drift": "drift",
+            "consistency": "consistency",
+        }[self.effect]
 
     @property
     def cue(self) -> str:
+        if self.effect == "consistency":
+            return "R_s"
         return NAMES[{"direct": FORBIDDEN, "proxy": FORBIDDEN, "drift": DRIFTING}[self.effect]]
 
 
@@ -83,6 +92,7 @@ PLANTS = (
     Plant("proxy", 0.25),
     Plant("drift", 0.15),
     Plant("drift", 0.25),
+    Plant("consistency", 0.40),
 )
 
 
@@ -148,9 +158,18 @@ def innocent_policy(world: World, rng: np.random.Generator) -> tuple[np.ndarray,
     return b, sigma
 
 
+def planted_noise(world: World, b: np.ndarray, plant: Plant) -> float:
+    """The noise sd after a planted loss of consistency: population R_s = ``plant.size``."""
+    r_s = plant.size
+    return float(np.sqrt(b @ world.cov @ b * (1 - r_s**2) / r_s**2))
+
+
 def planted_policy(world: World, b: np.ndarray, sigma: float, plant: Plant) -> np.ndarray:
     """The weights after the planted change, solved so that the population size is
-    ``plant.size`` (bracketed root of a monotone function of one weight)."""
+    ``plant.size`` (bracketed root of a monotone function of one weight); a loss of
+    consistency keeps the weights (its noise: ``planted_noise``)."""
+    if plant.effect == "consistency":
+        return b.copy()
 
     def with_weight(j: int, value: float) -> np.ndarray:
         out = b.copy()
@@ -180,7 +199,8 @@ def planted_policy(world: World, b: np.ndarray, sigma: float, plant: Plant) -> n
 @dataclass
 class Persons:
     """The decision-makers of one simulated batch: ids, organisation, whether planted,
-    onset day (the horizon for innocents), raw weights before/after, noise sd."""
+    onset day (the horizon for innocents), raw weights before/after, noise sd
+    before/after."""
 
     ids: np.ndarray
     org: np.ndarray
@@ -189,6 +209,7 @@ class Persons:
     before: np.ndarray
     after: np.ndarray
     sigma: np.ndarray
+    sigma_after: np.ndarray
 
 
 def window_geometry(length: int, step: int) -> tuple[int, np.ndarray]:
@@ -217,14 +238,17 @@ def make_persons(
     planted = np.tile(np.arange(ORG_SIZE) >= ORG_SIZE - PLANTED_PER_ORG, orgs)
     before, after = np.zeros((n, len(NAMES))), np.zeros((n, len(NAMES)))
     sigma, onset = np.zeros(n), np.full(n, days)
+    sigma_after = np.zeros(n)
     for i in range(n):
         before[i], sigma[i] = innocent_policy(world, rng)
-        after[i] = before[i]
+        after[i], sigma_after[i] = before[i], sigma[i]
         if planted[i]:
             after[i] = planted_policy(world, before[i], sigma[i], plant)
+            if plant.effect == "consistency":
+                sigma_after[i] = planted_noise(world, before[i], plant)
             onset[i] = 2 * length + rng.integers(0, step)
     ids = np.array([f"o{o:03d}-p{i % ORG_SIZE:02d}" for i, o in enumerate(org)], dtype=object)
-    return Persons(ids, org, planted, onset, before, after, sigma)
+    return Persons(ids, org, planted, onset, before, after, sigma, sigma_after)
 
 
 _TRI = np.triu_indices(len(NAMES) + 1)
@@ -257,11 +281,11 @@ def window_moments(
         person = np.repeat(who, counts.sum(axis=1))
         day = np.repeat(np.tile(np.arange(days), len(who)), counts.ravel())
         x = draw_cues(rng, len(day))
-        weights = np.where(
-            (day >= persons.onset[person])[:, None], persons.after[person], persons.before[person]
-        )
+        late = day >= persons.onset[person]
+        weights = np.where(late[:, None], persons.after[person], persons.before[person])
         y = 50.0 + np.einsum("ij,ij->i", x - world.mean, weights)
-        y += persons.sigma[person] * rng.standard_normal(len(day))
+        noise = np.where(late, persons.sigma_after[person], persons.sigma[person])
+        y += noise * rng.standard_normal(len(day))
         z = np.column_stack([x, y]) - shift
         running = np.zeros((len(day) + 1, 1 + p + len(_TRI[0])))
         np.cumsum(

@@ -14,8 +14,9 @@ configuration is the shipped default (``monitor.config.PolicyConfig`` and
 Reported per rule and volume: (a) false alerts (episodes opened) per 100 innocent
 person-cue-years for each alert kind, the time base being the span of the weekly looks
 (from the first full window; for drift from the first look with a non-overlapping
-predecessor), with an exact Poisson 95 % upper bound; drift counts every design column
-as a series, as the alerts do (8 per person); (b) detection delay in weeks from the
+predecessor), with an exact Poisson 95 % upper bound; drift counts every cue as a
+series, as the alerts do (7 per person: the three-level region is one cue with one joint
+verdict), consistency one per person; (b) detection delay in weeks from the
 change to the first weekly look at which an alert of the planted kind on the planted
 cue is open (median and 90th percentile over the planted persons detected within 52
 weeks; never-detected persons are counted apart).  When the goals (<= 1 false
@@ -71,6 +72,7 @@ RULES = ("calibrated", "per_window_fdr")
 TRADEOFF_TARGETS = (0.25, 0.5, 1.0, 2.0, 5.0, 10.0, 20.0, 50.0)
 TRADEOFF_VOLUME = 300
 GOALS = {"forbidden_cue": 1.0, "proxy_use": 1.0, "drift": 2.0}
+TRADEOFF_KINDS = ("forbidden_cue", "proxy_use")  # the curve of the forbidden-cue limit
 GOAL_DELAY_WEEKS, GOAL_SIZE = 8.0, 0.15
 
 
@@ -133,7 +135,7 @@ def run(
                     cfg, w, persons, plant, ends, days, change_points=setup.change_points
                 )
                 _add(tallies[rule][volume], delays[rule][volume][plant.label], got)
-            if volume == setup.tradeoff_volume and plant.kind != "drift":
+            if volume == setup.tradeoff_volume and plant.kind in TRADEOFF_KINDS:
                 for target in setup.tradeoff:
                     cfg = setup.config("calibrated", false_alerts_per_100_years=target)
                     got = evaluate(cfg, w, persons, plant, ends, days, drift=False)
@@ -183,7 +185,7 @@ def run(
                 "detection": [
                     _delay_row(setup.tradeoff_volume, p, trade_delays[target][p.label])
                     for p in setup.plants
-                    if p.kind != "drift"
+                    if p.kind in TRADEOFF_KINDS
                 ],
             }
             for target in setup.tradeoff
@@ -279,6 +281,7 @@ def _settings(configs: dict[str, Config]) -> dict:
         "drift_min_std_change",
         "false_alerts_per_100_years",
         "drift_false_alerts_per_100_years",
+        "consistency_floor",
     )
     out = {f"policy.{k}": getattr(cfg.policy, k) for k in keys}
     out.update({f"windows.{k}": getattr(cfg.windows, k) for k in ("length_days", "step_days")})

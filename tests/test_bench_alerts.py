@@ -73,6 +73,15 @@ def test_planted_sizes_are_what_an_ols_fit_finds_on_simulated_rows(world):
     change = abs(b1 - b0) * x1[:, world_model.DRIFTING].std(ddof=1) / y1.std(ddof=1)
     assert abs(change - 0.25) < 0.01
 
+    # A planted loss of consistency keeps the weights and raises the noise so that the
+    # model's multiple correlation (sqrt of statsmodels' R^2) falls to 0.40.
+    lost = world_model.Plant("consistency", 0.40)
+    same = world_model.planted_policy(world, before, sigma, lost)
+    noisier = world_model.planted_noise(world, before, lost)
+    assert np.array_equal(same, before) and noisier > sigma
+    x, y = _rows(world, before, noisier, n, 6)
+    assert abs(np.sqrt(sm.OLS(y, sm.add_constant(x)).fit().rsquared) - 0.40) < 0.01
+
 
 @pytest.fixture(scope="module")
 def tiny() -> dict:

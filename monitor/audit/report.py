@@ -212,7 +212,7 @@ def operating_characteristics_lines(config: Config, data: dict | None = None) ->
     lines = list(head)
     for text in prose:
         lines += textwrap.wrap(text, 84, break_on_hyphens=False)
-    kinds = ("forbidden_cue", "proxy_use", "drift")
+    kinds = tuple(dict.fromkeys(r["kind"] for r in figures["false_alerts"]))
     lines += [
         "False alerts per 100 innocent person-cue-years (exact 95% upper bound):",
         f"  {'decisions/90 days':<18}" + "".join(f"{k:>20}" for k in kinds),
