@@ -33,7 +33,6 @@ import pandas as pd
 from monitor.assess.findings import JOINT, evaluate
 from monitor.assess.outbox import Job, deliver_jobs, delivery_claim, pending, queue
 from monitor.assess.versions import write_versions
-from monitor.cautions import CAUTION
 from monitor.config import Config
 from monitor.errors import UserError
 from monitor.stats.episodes import episodes
@@ -513,24 +512,3 @@ def _num(v) -> float | None:
     except (TypeError, ValueError):
         return None
     return f if np.isfinite(f) else None
-
-
-def describe_alerts(docs: list[dict]) -> str:
-    """``list_alerts`` documents as text for a person: a line per alert, then the caution."""
-    if not docs:
-        return "No alerts."
-    lines = []
-    for d in docs:
-        ev = d["evidence"]
-        window = ev.get("window") or {}
-        size = ev.get("std_weight")
-        q = ev.get("q_value")
-        lines.append(
-            f"#{d['id']:<4} {d['state']:<12} {d['kind']:<14} {d['decision_maker']:<10} "
-            f"{d['cue'] or '':<22} window {window.get('start')}..{window.get('end')} "
-            f"size {'-' if size is None else f'{size:+.3f}'} q {q if q is not None else '-'} "
-            f"n {ev.get('n')}"
-            + (f"  ack by {d['acknowledged_by']}" if d["acknowledged_by"] else "")
-        )
-    lines.append(CAUTION)
-    return "\n".join(lines)
