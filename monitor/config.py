@@ -125,9 +125,15 @@ class DecisionsConfig(_Strict):
     judgment_range: tuple[float, float] | None = None
     judgment_values: dict[str, float] = Field(default_factory=dict)
     timezone: str = "UTC"
+    # Optional column saying what a row does to a stored decision: empty = a new
+    # decision, ``correct_value`` = replaces the stored one, ``retract_value`` =
+    # withdraws it (monitor.ingest.corrections).
+    change: str | None = None
+    correct_value: str = "correct"
+    retract_value: str = "retract"
 
     _tz = field_validator("timezone")(_check_timezone)
-    _columns = field_validator("id", "decided_at", "decision_maker", "team", "judgment")(
+    _columns = field_validator("id", "decided_at", "decision_maker", "team", "judgment", "change")(
         _column_name
     )
     _keys = field_validator("judgment_values")(_map_keys)
@@ -136,6 +142,9 @@ class DecisionsConfig(_Strict):
     def _range_ordered(self) -> DecisionsConfig:
         if self.judgment_range and self.judgment_range[0] > self.judgment_range[1]:
             raise ValueError("judgment_range must be [low, high] with low <= high")
+        _map_keys({self.correct_value: 0, self.retract_value: 0})
+        if self.correct_value == self.retract_value:
+            raise ValueError("correct_value and retract_value must differ")
         return self
 
 
@@ -341,6 +350,10 @@ class IngestConfig(_Strict):
     # A landing file is read only once it has not changed for this long (0: at once);
     # see monitor.ingest.files.plan_files.
     settle_seconds: float = Field(5.0, ge=0, le=24 * 3600)
+    # A numeric cue, judgment or criterion with no range of its own whose magnitude
+    # exceeds this is quarantined (implausible_magnitude).  At most 1e100: beyond it the
+    # bucket statistics' sums of squares could overflow a double.
+    max_magnitude: float = Field(1e15, gt=0, le=1e100)
 
     @field_validator("memory_limit")
     @classmethod

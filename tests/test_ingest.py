@@ -114,7 +114,22 @@ def test_every_reason_code_is_produced_and_counted(tmp_path):
     )
     doc_b2 = ingest_json(cfg_b, "--kind", "outcomes", str(tmp_path / "b" / "o.csv"))
 
-    for doc in (doc_a1, doc_a2, doc_b1, doc_b2):
+    # Configuration C declares a change column (corrections and retractions).
+    cfg_c = make_config(tmp_path / "c", decisions__change="change")
+    assert run_cli(cfg_c, "init").returncode == 0
+    write_csv(
+        tmp_path / "c" / "d.csv",
+        [
+            decision_row(1),  # accepted
+            decision_row(2, age_days="1e200"),  # implausible_magnitude (no range)
+            decision_row(3, change="undo"),  # unknown_change
+            decision_row(4, change="correct"),  # unknown_decision: c000004 is not stored
+        ],
+        [*DECISION_COLUMNS, "change"],
+    )
+    doc_c1 = ingest_json(cfg_c, "--kind", "decisions", str(tmp_path / "c" / "d.csv"))
+
+    for doc in (doc_a1, doc_a2, doc_b1, doc_b2, doc_c1):
         _check_shape(doc)
     assert doc_a1["quarantine_reasons"] == {
         "binary_not_in_map": 2,
@@ -133,8 +148,13 @@ def test_every_reason_code_is_produced_and_counted(tmp_path):
     assert doc_a2["quarantine_reasons"] == {"criterion_not_in_map": 1, "outcome_before_decision": 1}
     assert doc_b1["quarantine_reasons"] == {"judgment_not_in_map": 1}
     assert doc_b2["quarantine_reasons"] == {"criterion_not_numeric": 1, "criterion_out_of_range": 1}
+    assert doc_c1["quarantine_reasons"] == {
+        "implausible_magnitude": 1,
+        "unknown_change": 1,
+        "unknown_decision": 1,
+    }
     seen = set()
-    for doc in (doc_a1, doc_a2, doc_b1, doc_b2):
+    for doc in (doc_a1, doc_a2, doc_b1, doc_b2, doc_c1):
         seen |= doc["quarantine_reasons"].keys()
     assert seen == set(REASONS)  # every documented code, and no undocumented one
 

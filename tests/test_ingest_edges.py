@@ -100,10 +100,14 @@ DECISIONS_NUMERIC = {
             ("-1", "binary_not_in_map", math.nan),
             ("", "missing_field", math.nan),
         ],  # fmt: skip
-        # A numeric cue without a range takes any finite number.
+        # A numeric cue without a range takes any finite number up to [ingest]
+        # max_magnitude (default 1e15) in magnitude, the bound included.
         "age_days": [
-            ("-1e300", ACCEPT, -1e300),
-            ("1e300", ACCEPT, 1e300),
+            ("-1e15", ACCEPT, -1e15),
+            ("1e15", ACCEPT, 1e15),
+            (repr(_up(1e15)), "implausible_magnitude", math.nan),
+            ("-1e300", "implausible_magnitude", math.nan),
+            ("1e300", "implausible_magnitude", math.nan),
             ("inf", "cue_not_numeric", math.nan),
             ("", "missing_field", math.nan),
         ],  # fmt: skip

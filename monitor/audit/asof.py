@@ -151,16 +151,29 @@ _COMPARED = {
 }
 
 
-def _changes(before: pd.DataFrame, after: pd.DataFrame, mask: np.ndarray) -> dict[str, int]:
-    """Row-level reasons for a group's restatement (``mask`` over ``after``)."""
+def _changes(
+    before: pd.DataFrame, after: pd.DataFrame, mask: np.ndarray, mask_before: np.ndarray | None
+) -> dict[str, int]:
+    """Row-level reasons for a group's restatement (``mask`` over ``after``,
+    ``mask_before`` over ``before``: the group's rows in each snapshot).  A decision
+    whose stored version changed (another batch) was corrected; one in the group before
+    and in neither group nor snapshot after was retracted."""
     a = after[mask].set_index("decision_id")
     b = before.set_index("decision_id")
     common = a.index.intersection(b.index)
     cb, ca = b.loc[common, "criterion"], a.loc[common, "criterion"]
+    was = (
+        before[mask_before]["decision_id"] if mask_before is not None else before["decision_id"][:0]
+    )
+    every_after = after.set_index("decision_id")
+    both = a.index.union(pd.Index(was)).intersection(b.index).intersection(every_after.index)
+    moved = b.loc[both, "batch_id"].to_numpy() != every_after.loc[both, "batch_id"].to_numpy()
     return {
         "late_decisions": int(len(a.index.difference(b.index))),
         "newly_linked": int((cb.isna() & ca.notna()).sum()),
         "corrected_outcomes": int((cb.notna() & ca.notna() & (cb != ca)).sum()),
+        "corrected_decisions": int(moved.sum()),
+        "retracted_decisions": int((~pd.Index(was).isin(every_after.index)).sum()),
     }
 
 
@@ -168,7 +181,9 @@ def restatement_table(before, after) -> Table:
     """Every compared figure whose value moved between two snapshots, and why."""
     old_q = before.rows.frame[before.rows.in_quarter]
     new_q = after.rows.frame[after.rows.in_quarter].reset_index(drop=True)
-    why = {(s, k): _changes(old_q, new_q, m) for s, k, _, m in groups_of(new_q)}
+    old_q = old_q.reset_index(drop=True)
+    was = {(s, k): m for s, k, _, m in groups_of(old_q)}
+    why = {(s, k): _changes(old_q, new_q, m, was.get((s, k))) for s, k, _, m in groups_of(new_q)}
     t_old = {t.name: t for t in before.tables}
     out = []
     for t in after.tables:
@@ -201,12 +216,15 @@ def restatement_table(before, after) -> Table:
                         c.get("newly_linked", 0),
                         c.get("corrected_outcomes", 0),
                         c.get("late_decisions", 0),
+                        c.get("corrected_decisions", 0),
+                        c.get("retracted_decisions", 0),
                         text or "no row-level change found",
                     )
                 )
     cols = spec(
         "table:str scope:str decision_maker:str cue:str figure:str value_before value_after "
-        "change newly_linked:int corrected_outcomes:int late_decisions:int why:str"
+        "change newly_linked:int corrected_outcomes:int late_decisions:int "
+        "corrected_decisions:int retracted_decisions:int why:str"
     )
     title = f"Restatements between {before.as_of} and {after.as_of}"
     return make_table("restatements", title, cols, out)

@@ -35,7 +35,13 @@ from monitor.errors import UserError
 from monitor.refit.buckets import design_expressions
 from monitor.stats.monitoring import drift_limit, forbidden_cue_limit
 from monitor.store.connection import Store
-from monitor.store.rules import current_outcome_rows_sql, ingested_by, quote_ident, utc_now
+from monitor.store.rules import (
+    current_outcome_rows_sql,
+    decisions_known_at_sql,
+    ingested_by,
+    quote_ident,
+    utc_now,
+)
 
 FORMATS = ("csv", "parquet", "xlsx", "html")
 _QUARTER = re.compile(r"^\s*(\d{4})\s*-?\s*[Qq]([1-4])\s*$")
@@ -140,14 +146,14 @@ def fetch_rows(
         + f"({present}) AS cues_ok, o.criterion, o.batch_id AS o_batch, "
         "o.source_line AS o_line, epoch(o.observed_at) AS observed_s, "
         "coalesce(o.n_versions, 0) AS o_versions "
-        "FROM decisions d LEFT JOIN o ON o.decision_id = d.decision_id "
+        f"FROM ({decisions_known_at_sql()}) d LEFT JOIN o ON o.decision_id = d.decision_id "
         "WHERE d.decided_day BETWEEN ? AND ? AND " + ingested_by("d.ingested_at") + " "
         "ORDER BY d.decision_id"
     )
     store = Store(config)
     with store.reader() as con:
         store.ensure_ready(con)
-        df = con.execute(sql, [as_of, first, last, as_of]).df()
+        df = con.execute(sql, [as_of, as_of, as_of, as_of, first, last, as_of]).df()
     df["day"] = pd.to_datetime(df["day"]).dt.date
     df["criterion"] = df["criterion"].astype(float)
     in_q = (df["day"] >= quarter_first).to_numpy()
@@ -209,13 +215,13 @@ def fetch_decision_rows(config: Config, maker: str, first: date, last: date, as_
         "strftime(timezone('UTC', d.decided_at), '%Y-%m-%dT%H:%M:%S+00:00'), d.decision_maker, "
         "d.team, d.judgment, " + "".join(f"d.{quote_ident(c)}, " for c in cues) + "o.criterion, "
         "strftime(timezone('UTC', o.observed_at), '%Y-%m-%dT%H:%M:%S+00:00') "
-        "FROM decisions d LEFT JOIN o ON o.decision_id = d.decision_id "
+        f"FROM ({decisions_known_at_sql()}) d LEFT JOIN o ON o.decision_id = d.decision_id "
         "WHERE d.decision_maker = ? AND d.decided_day BETWEEN ? AND ? "
         "AND " + ingested_by("d.ingested_at") + " ORDER BY d.decision_id"
     )
     store = Store(config)
     with store.reader() as con:
-        rows = con.execute(sql, [as_of, maker, first, last, as_of]).fetchall()
+        rows = con.execute(sql, [as_of, as_of, as_of, as_of, maker, first, last, as_of]).fetchall()
     if not rows:
         raise ExportUsageError(
             f"--include-rows {maker}: no decisions by that decision-maker in the quarter."

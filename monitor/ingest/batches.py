@@ -26,6 +26,7 @@ import duckdb
 from monitor import __version__
 from monitor.config import Config
 from monitor.ingest.checks import FileRejected, build_checks, reader_sql
+from monitor.ingest.corrections import classify_changes_sql, supersede
 from monitor.ingest.files import (
     IngestUsageError,
     detect_format,
@@ -58,6 +59,9 @@ class FileResult:
     accepted: int = 0
     quarantined: int = 0
     duplicates: int = 0
+    # Of ``accepted``: decisions corrected and retracted (monitor.ingest.corrections).
+    corrected: int = 0
+    retracted: int = 0
     quarantine_reasons: dict[str, int] = field(default_factory=dict)
     message: str = ""
 
@@ -105,6 +109,8 @@ class IngestSummary:
             "accepted": self.accepted,
             "quarantined": self.quarantined,
             "duplicates": self.duplicates,
+            "corrected": sum(f.corrected for f in self.files),
+            "retracted": sum(f.retracted for f in self.files),
             "skipped_files": self.skipped_files,
             "waiting_files": self.waiting_files,
             "failed_files": len(self.failed_files),
@@ -120,6 +126,11 @@ class IngestSummary:
             f"Rows: {self.accepted} accepted, {self.quarantined} quarantined, "
             f"{self.duplicates} duplicates.",
         ]
+        changed = [(sum(getattr(f, k) for f in self.files), k) for k in ("corrected", "retracted")]
+        if any(n for n, _ in changed):
+            lines.append(
+                f"Of the accepted: {changed[0][0]} corrections, {changed[1][0]} retractions."
+            )
         if self.waiting_files:
             lines.append(
                 f"{self.waiting_files} file(s) waiting: changed too recently to be complete; "
@@ -312,7 +323,8 @@ def _stage(
 
     # 2. Duplicates: identical to what is stored (or earlier in the file) -> counted;
     #    a stored decision with different content -> quarantined, never overwritten.
-    con.execute(classify_duplicates_sql(checks))
+    changes = checks.change_column() is not None
+    con.execute(classify_changes_sql(checks) if changes else classify_duplicates_sql(checks))
     return rejected_lines
 
 
@@ -391,8 +403,9 @@ def _write_batch(
     kind = checks.kind
     batch_id = con.execute("SELECT nextval('batch_ids')").fetchone()[0]
     ingested_at = utc_now()
+    corrected, retracted = supersede(con, checks, batch_id, ingested_at)
     accepted = con.execute(insert_sql(checks, batch_id, ingested_at)).fetchone()
-    accepted = int(accepted[0]) if accepted else 0
+    accepted = (int(accepted[0]) if accepted else 0) + retracted
     con.execute(quarantine_sql(checks, batch_id, ingested_at))
     if rejected_lines:
         encoding = "utf-8" if fmt == "jsonl" else config.ingest.encoding
@@ -456,6 +469,8 @@ def _write_batch(
         accepted=accepted,
         quarantined=quarantined,
         duplicates=duplicates,
+        corrected=corrected,
+        retracted=retracted,
         quarantine_reasons=dict(sorted(reasons.items())),
     )
 

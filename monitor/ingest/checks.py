@@ -32,10 +32,13 @@ REASONS = {
     "criterion_out_of_range": "the criterion lies outside criterion_range",
     "cue_not_numeric": "a numeric cue is not a number",
     "cue_out_of_range": "a numeric cue lies outside its configured range",
+    "implausible_magnitude": "a numeric cue, judgment or criterion without a range of its own is larger in magnitude than [ingest] max_magnitude",
     "binary_not_in_map": "a binary cue value is not in its values map (or not 0/1)",
     "undeclared_level": "a categorical cue value is not one of its declared levels",
     "conflicting_duplicate": "the id is already stored (or earlier in the file) with different content",
     "outcome_before_decision": "the outcome is dated before its decision",
+    "unknown_change": "the decisions' change column holds neither the correct nor the retract value (nor is empty)",
+    "unknown_decision": "a correction or retraction names a decision id that is not stored (or was retracted)",
 }
 
 
@@ -47,7 +50,7 @@ class FileRejected(UserError):
 class FileColumn:
     alias: str  # safe staging name
     source: str  # the column / key name in the file
-    role: str  # id | time | maker | team | value | cue
+    role: str  # id | change | time | maker | team | value | cue
     required: bool
     cue: str | None = None
 
@@ -100,7 +103,7 @@ class Checks:
     def _pre_column(self, c: FileColumn) -> tuple[str, str] | None:
         """(name, expression) of column ``c``'s first layer (None: parsed straight
         from the text)."""
-        if c.role in ("id", "maker", "team"):
+        if c.role in ("id", "maker", "team", "change"):
             return f"t_{c.alias}", _v(c.alias)
         if c.role == "value":
             numeric = not self._value_spec()[0]
@@ -153,7 +156,32 @@ class Checks:
                     _about(c, f" is outside [{lo:g}, {hi:g}]"),
                 )
             )
+        elif not values:
+            out.append(self._magnitude_check(c))
         return out
+
+    def _magnitude_bound(self) -> float:
+        return float(self.config.ingest.max_magnitude)
+
+    def _magnitude_check(self, c: FileColumn) -> tuple[str, str, str]:
+        """A number with no range of its own may not exceed [ingest] max_magnitude."""
+        bound = self._magnitude_bound()
+        return (
+            f"abs(p_{c.alias}) > {bound!r}",
+            "implausible_magnitude",
+            _about(c, f" is larger in magnitude than {bound:g} ([ingest] max_magnitude)"),
+        )
+
+    def _unbounded(self, c: FileColumn) -> bool:
+        """Whether column ``c`` is a number with no range or map of its own (the
+        magnitude check applies)."""
+        if c.role == "value":
+            values, rng, _ = self._value_spec()
+            return not values and rng is None
+        if c.role == "cue":
+            cue = self.config.cues[c.cue]
+            return cue.type == "numeric" and cue.range is None
+        return False
 
     def _cue_checks(self, c: FileColumn, cue: CueConfig) -> list[tuple[str, str, str]]:
         v = _v(c.alias)
@@ -170,6 +198,8 @@ class Checks:
                         _about(c, f" is outside [{lo:g}, {hi:g}]"),
                     )
                 )
+            else:
+                out.append(self._magnitude_check(c))
         elif cue.type == "binary":
             allowed = ", ".join(cue.values) if cue.values else "0, 1"
             out.append(
@@ -221,11 +251,18 @@ class Checks:
         ``_parse_and_checks`` fires: a parsed value is NULL whenever its text is
         empty, so testing the parsed values (and ranges) is enough."""
         out = ["NOT is_malformed"]
+        always = 1  # the leading conditions a retraction must meet too
         for c in self.columns:
             p = f"p_{c.alias}"
+            if c.role == "change":
+                out.append(f"({p} IS NULL OR {p} IN {self._change_values()})")
+                always = len(out)
+                continue
             if c.role in ("id", "maker", "team"):
                 if c.required:
                     out.append(f"{p} IS NOT NULL")
+                    if c.role == "id":
+                        always = len(out)
             elif c.role == "time":
                 out.append(
                     f"{p} IS NOT NULL AND {p} <= {lit(horizon.isoformat())}::TIMESTAMPTZ "
@@ -240,7 +277,41 @@ class Checks:
                     rng = cue.range if cue.type == "numeric" else None
                 if rng is not None:
                     out.append(f"{p} BETWEEN {float(rng[0])!r} AND {float(rng[1])!r}")
-        return out
+                elif self._unbounded(c):
+                    out.append(f"abs({p}) <= {self._magnitude_bound()!r}")
+        retracting = self.retracting_sql()
+        if retracting is None:
+            return out
+        # A retraction needs its id (and a known change value) only.
+        return out[:always] + [f"(({x}) OR {retracting})" for x in out[always:]]
+
+    # --- corrections and retractions (the optional change column) -----------------------
+
+    def change_column(self) -> FileColumn | None:
+        return next((c for c in self.columns if c.role == "change"), None)
+
+    def _change_values(self) -> str:
+        d = self.config.decisions
+        return f"({lit(d.correct_value)}, {lit(d.retract_value)})"
+
+    def retracting_sql(self, prefix: str = "") -> str | None:
+        """SQL: the staged record (``prefix`` its table alias and dot) retracts its
+        decision; None when the configuration has no change column."""
+        c = self.change_column()
+        if c is None:
+            return None
+        return (
+            f"({prefix}p_{c.alias} IS NOT DISTINCT FROM {lit(self.config.decisions.retract_value)})"
+        )
+
+    def correcting_sql(self, prefix: str = "") -> str | None:
+        """SQL: the staged record corrects its decision; None without a change column."""
+        c = self.change_column()
+        if c is None:
+            return None
+        return (
+            f"({prefix}p_{c.alias} IS NOT DISTINCT FROM {lit(self.config.decisions.correct_value)})"
+        )
 
     def _parse_and_checks(
         self, horizon: datetime | None, earliest: str
@@ -255,12 +326,26 @@ class Checks:
                 "'not a JSON object: ' || left(coalesce(raw_line, ''), 200)",
             ),
         ]
+        first_field = len(checks)
         for c in self.columns:
             v = _v(c.alias)
-            if c.role in ("id", "maker", "team"):
+            if c.role == "change":
+                d = self.config.decisions
+                parsed.append(f"t_{c.alias} AS p_{c.alias}")
+                checks.append(
+                    (
+                        f"p_{c.alias} IS NOT NULL AND p_{c.alias} NOT IN {self._change_values()}",
+                        "unknown_change",
+                        _about(c, f" is neither {d.correct_value}, {d.retract_value} nor empty"),
+                    )
+                )
+                first_field = len(checks)
+            elif c.role in ("id", "maker", "team"):
                 parsed.append(f"t_{c.alias} AS p_{c.alias}")
                 if c.required:
                     checks.append((f"{v} IS NULL", "missing_field", lit(f"{c.source} is empty")))
+                    if c.role == "id":
+                        first_field = len(checks)
             elif c.role == "time":
                 parsed.append(f"TRY_CAST({v} AS TIMESTAMPTZ) AS p_{c.alias}")
                 checks.append((f"{v} IS NULL", "missing_field", lit(f"{c.source} is empty")))
@@ -289,6 +374,13 @@ class Checks:
                 cue = self.config.cues[c.cue]
                 parsed.append(f"{self._cue_expr(c, cue)} AS p_{c.alias}")
                 checks.extend(self._cue_checks(c, cue))
+        retracting = self.retracting_sql()
+        if retracting is not None:
+            # A retraction needs its id and a known change value only: every later
+            # check leaves it alone.
+            checks[first_field:] = [
+                (f"({w}) AND NOT {retracting}", r, m) for w, r, m in checks[first_field:]
+            ]
         return parsed, checks
 
     def _value_spec(self):
@@ -372,8 +464,10 @@ def build_checks(config: Config, kind: str) -> Checks:
     cols: list[FileColumn] = []
     if kind == "decisions":
         d = config.decisions
+        cols.append(FileColumn("f_id", d.id, "id", True))
+        if d.change:
+            cols.append(FileColumn("f_change", d.change, "change", False))
         cols += [
-            FileColumn("f_id", d.id, "id", True),
             FileColumn("f_time", d.decided_at, "time", True),
             FileColumn("f_maker", d.decision_maker, "maker", True),
         ]

@@ -27,7 +27,7 @@ def _compare(checks: Checks, a: str, b: str, stored: bool) -> str:
     """SQL: record a's parsed content equals b's (b a stored row when ``stored``)."""
     parts = []
     for c in checks.columns:
-        if c.role == "id":
+        if c.role == "id" or (stored and c.role == "change"):
             continue
         left = f"{a}.p_{c.alias}"
         right = f"{b}.{_stored_column(checks, c)}" if stored else f"{b}.p_{c.alias}"
@@ -113,12 +113,19 @@ def _repeated_ids(idc: str, where: str) -> str:
 # --- writing -------------------------------------------------------------------------------
 
 
+def _not_retraction(checks: Checks, prefix: str = "") -> str:
+    """SQL: `` AND NOT <retracting>`` when the files may carry retractions (which add
+    no row and touch no new bucket: monitor.ingest.corrections handles them)."""
+    retracting = checks.retracting_sql(prefix)
+    return "" if retracting is None else f" AND NOT {retracting}"
+
+
 def insert_sql(checks: Checks, batch_id: int, ingested_at: datetime) -> str:
     """INSERT appending the accepted records of _checked to decisions / outcomes."""
     # No ORDER BY: a filtered scan keeps _checked's (file) order while DuckDB's
     # preserve_insertion_order is on (the default), and a sort of every accepted
     # row was a large share of the ingest time.
-    ok = "reason IS NULL AND NOT is_duplicate AND NOT is_blank"
+    ok = "reason IS NULL AND NOT is_duplicate AND NOT is_blank" + _not_retraction(checks)
     ts = f"p_{checks.col('time').alias}"
     if checks.kind == "decisions":
         cue_cols = [c for c in checks.columns if c.role == "cue"]
@@ -158,7 +165,9 @@ def quarantine_sql(checks: Checks, batch_id: int, ingested_at: datetime) -> str:
 
 def mark_dirty_sql(checks: Checks, marked_at: datetime) -> str:
     """INSERT marking the (decision maker, day) buckets the accepted records touch."""
-    ok = "c.reason IS NULL AND NOT c.is_duplicate AND NOT c.is_blank"
+    ok = "c.reason IS NULL AND NOT c.is_duplicate AND NOT c.is_blank" + _not_retraction(
+        checks, "c."
+    )
     stamp = f"{lit(marked_at.isoformat())}::TIMESTAMPTZ"
     if checks.kind == "decisions":
         ts = f"c.p_{checks.col('time').alias}"

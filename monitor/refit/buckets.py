@@ -11,9 +11,10 @@ vector z = (x_1 .. x_k, Ys, Ye), each as one fixed-size array of *shifted sums*
 
 Why this shape: plain sums of cross-products lose digits when cues have large means
 (an amount in pounds, a date).  Each row is shifted by a per-decision-maker reference
-``c`` (``bucket_shifts``: the decision-maker's means when first seen, cut to 20
+``c`` (``bucket_shifts``: the decision-maker's medians when first seen, cut to 20
 significant bits) before its products are summed with plain ``sum``, so the summed terms
-are near zero.  Because every bucket of one decision-maker shares its shift, the
+are near zero.  A median, not a mean: one extreme value cannot drag the reference away
+from the rest of a person's rows, so it affects only the windows that contain it.  Because every bucket of one decision-maker shares its shift, the
 statistics of any set of that decision-maker's days are the plain sums of the buckets'
 arrays - the shifted form of the pairwise update, exact in real arithmetic - and
 ``finish_moments`` turns a sum into count, mean and centred co-moment in numpy:
@@ -28,6 +29,7 @@ from dataclasses import dataclass
 import numpy as np
 
 from monitor.config import Config
+from monitor.stats.limits import RAW_REFIT_CANCELLATION
 from monitor.stats.moments import Moments
 from monitor.store.rules import current_outcome_sql
 from monitor.store.rules import quote_ident as qi
@@ -124,6 +126,25 @@ class StatLayout:
         tri = [1 + pl + at for at, (i, j) in enumerate(_pairs(pl)) if j < pa]
         return np.array([0, *range(1, 1 + pa), *tri], dtype=np.intp)
 
+    def lost_precision(self, sums: np.ndarray) -> np.ndarray:
+        """(m,) bool: the window's sums lost too many digits to cancellation to be fitted
+        from them: a variable whose centred sum of squares lies between
+        CANCELLATION_FLOOR (below it the variable is constant) and RAW_REFIT_CANCELLATION
+        times its shifted one (digits lost ~ log10 of the ratio's inverse), or a sum that
+        is not finite.  Such a window is refitted from its raw rows."""
+        pl, pw = self.p_linked, self.set_width
+        where = {pair: 1 + pl + at for at, pair in enumerate(_pairs(pl))}
+        lost = ~np.isfinite(sums).all(axis=1)
+        for part, p in ((sums[:, :pw], self.p_all), (sums[:, pw:], pl)):
+            n = part[:, :1]
+            s = part[:, 1 : 1 + p]
+            q = part[:, [where[(i, i)] for i in range(p)]]
+            with np.errstate(invalid="ignore", divide="ignore", over="ignore"):
+                centred = q - s * s / np.where(n > 0, n, 1.0)
+                thin = (centred < RAW_REFIT_CANCELLATION * q) & (centred > CANCELLATION_FLOOR * q)
+            lost |= (thin & (n > 0)).any(axis=1)
+        return lost
+
     def count(self, sums: np.ndarray) -> np.ndarray:
         """Rows counted in each (m, 2 * set_width) array (all rows)."""
         return sums[:, 0]
@@ -158,15 +179,17 @@ _SPLIT = "8589934593.0"
 
 def shift_select(config: Config, decision_filter: str) -> str:
     """SELECT (decision_maker, shift DOUBLE[p_linked]) for the decision-makers of the
-    decisions ``d`` matching ``decision_filter``: their cue and judgment means, and the
-    mean of all stored outcomes for the criterion (any value near the data keeps the
-    digits; only the cancellation needs it close)."""
+    decisions ``d`` matching ``decision_filter``: their cue and judgment medians, and the
+    median of all stored outcomes for the criterion (any value near the data keeps the
+    digits; only the cancellation needs it close).  Medians, so that one absurd value
+    cannot move the reference of every other row (a mean of 1e12 and 999 ordinary values
+    sits 1e9 away from all of them, and their windows' spread cancels away)."""
     xs = [*design_expressions(config), "d.judgment"]
-    means = [f"coalesce(avg({e}), 0)" for e in xs]
-    means.append("coalesce((SELECT avg(criterion) FROM outcomes), 0)")
-    cut = ", ".join(f"({m} * {_SPLIT}) - (({m} * {_SPLIT}) - {m})" for m in means)
+    medians = [f"coalesce(median({e}), 0)" for e in xs]
+    medians.append("coalesce((SELECT median(criterion) FROM outcomes), 0)")
+    cut = ", ".join(f"({m} * {_SPLIT}) - (({m} * {_SPLIT}) - {m})" for m in medians)
     return (
-        f"SELECT d.decision_maker, [{cut}]::DOUBLE[{len(means)}] AS shift FROM decisions d "
+        f"SELECT d.decision_maker, [{cut}]::DOUBLE[{len(medians)}] AS shift FROM decisions d "
         f"WHERE ({decision_filter}) AND {_cues_present(config)} GROUP BY d.decision_maker"
     )
 
@@ -189,26 +212,36 @@ def _shifted_rows(config: Config, rows: str, extra: str = "") -> str:
     )
 
 
-def _sums(p: int, weight: str = "", with_criterion: bool = True) -> str:
+def _sums(p: int, with_criterion: bool = True) -> str:
     """The array expression of one set's statistics over shifted values u0..u(p-1):
-    count, sums and the upper triangle of product sums, each multiplied by ``weight``
-    (e.g. "w * ").  Without the criterion its entries are the literal 0 (its u is 0)."""
+    count, sums and the upper triangle of product sums.  Without the criterion its
+    entries are the literal 0 (its u is 0)."""
     ye = p - 1
 
     def term(expr: str, *idx: int) -> str:
-        return "0.0" if not with_criterion and ye in idx else f"sum({weight}{expr})"
+        return "0.0" if not with_criterion and ye in idx else f"sum({expr})"
 
-    count = f"sum({weight.rstrip(' *')})" if weight else "count(*)::DOUBLE"
-    sums = [count] + [term(f"u{i}", i) for i in range(p)]
+    sums = ["count(*)::DOUBLE"] + [term(f"u{i}", i) for i in range(p)]
     sums += [term(f"u{i} * u{j}", i, j) for i, j in _pairs(p)]
     return f"[{', '.join(sums)}]::DOUBLE[{len(sums)}]"
 
 
-def full_sql(config: Config) -> str:
+def _in_buckets(
+    table: str, bucket_day: str = "d.decided_day", maker: str = "d.decision_maker"
+) -> str:
+    """SQL: the row's (decision-maker, day) is one of the buckets listed in ``table``."""
+    return (
+        f"EXISTS (SELECT 1 FROM {table} rb WHERE rb.decision_maker = {maker} "
+        f"AND rb.day = {bucket_day})"
+    )
+
+
+def full_sql(config: Config, only: str | None = None) -> str:
     """Every stored decision's bucket statistics: per (decision_maker, day) one row with
     ``linked_only`` false (all the day's decisions; criterion entries 0) and one with
     ``linked_only`` true (the decisions with a current outcome).  Returns
     decision_maker, day, linked_only, team (max) and ``sums`` DOUBLE[set_width].
+    ``only``: a table of (decision_maker, day) buckets to compute instead of all.
 
     The all-rows set needs no outcome: it is summed from the decisions alone, and only
     the linked set joins the current outcomes (an inner join over the outcomes).  Plain
@@ -216,10 +249,16 @@ def full_sql(config: Config) -> str:
     test (1 vs 4 threads, 1e-12 relative) holds with it."""
     p = len(config.design_columns()) + 2
     present = _cues_present(config)
+    outcomes = current_outcome_sql()
+    if only is not None:
+        present += f" AND {_in_buckets(only)}"
+        outcomes = current_outcome_sql(
+            decision_filter=f"decision_id IN (SELECT d.decision_id FROM decisions d WHERE {present})"
+        )
     every = f"SELECT d.*, d.decided_day AS _bday, NULL::DOUBLE AS _crit FROM decisions d WHERE {present}"
     linked = (
         "SELECT d.*, d.decided_day AS _bday, o.criterion AS _crit "
-        f"FROM ({current_outcome_sql()}) o JOIN decisions d USING (decision_id) WHERE {present}"
+        f"FROM ({outcomes}) o JOIN decisions d USING (decision_id) WHERE {present}"
     )
     return (
         f"SELECT decision_maker, day, false AS linked_only, max(team) AS team, "
@@ -230,16 +269,42 @@ def full_sql(config: Config) -> str:
     )
 
 
-def delta_sql(config: Config, through_batch: int, day_range: tuple | None) -> str:
+def recompute_sql(through_batch: int, day_range: tuple | None) -> str:
+    """SELECT DISTINCT (decision_maker, day) of the buckets the batches after
+    ``through_batch`` take something out of: the buckets of decision versions in the
+    stored sums that a correction or retraction replaced, and of stored decisions whose
+    current outcome was replaced by a correction.  These are summed again from their
+    rows (``full_sql(only=...)``) rather than by subtraction: taking a value out of a
+    sum leaves its rounding behind, and after an absurd value that rounding is larger
+    than everything else in the bucket."""
+    b = int(through_batch)
+    in_range = "TRUE"
+    if day_range is not None:
+        lo, hi = (lit(str(d)) for d in day_range)
+        in_range = f"d.decided_day BETWEEN {lo}::DATE AND {hi}::DATE"
+    return (
+        "SELECT DISTINCT decision_maker, decided_day AS day FROM superseded_decisions "
+        f"WHERE superseded_batch > {b} AND batch_id <= {b} UNION "
+        "SELECT d.decision_maker, d.decided_day FROM decisions d "
+        f"WHERE d.batch_id <= {b} AND {in_range} "
+        f"AND d.decision_id IN (SELECT decision_id FROM outcomes WHERE batch_id > {b}) "
+        f"AND d.decision_id IN (SELECT decision_id FROM outcomes WHERE batch_id <= {b})"
+    )
+
+
+def delta_sql(config: Config, through_batch: int, day_range: tuple | None, skip: str) -> str:
     """What the batches after ``through_batch`` add to the stored bucket statistics:
     decision_maker, day, linked_only, team (max) and ``sums`` DOUBLE[set_width] per
-    touched row, as signed sums.
+    touched row.
 
-    * a new decision adds its row to its bucket's all-rows set, and to the linked set
-      if it has an outcome (one that came with it or earlier);
-    * an older decision whose current outcome changed adds its row with the new
-      criterion to the linked set and takes out the row with the criterion it had (if
-      it had one); its all-rows set does not change.
+    * a new decision (or the new version of a corrected one) adds its row to its
+      bucket's all-rows set, and to the linked set if it has an outcome (one that came
+      with it or earlier);
+    * an older decision whose first outcome arrived adds its row with that criterion to
+      the linked set; its all-rows set does not change.
+
+    Nothing is subtracted: the buckets something leaves (``recompute_sql``, the table
+    ``skip``) are left out here and summed again from their rows by the caller.
 
     ``day_range`` (first, last day of the touched buckets, from ``dirty_buckets``)
     lets DuckDB skip the row groups of older decisions when looking up the decisions
@@ -266,21 +331,20 @@ def delta_sql(config: Config, through_batch: int, day_range: tuple | None) -> st
     )
     history = "decision_id IN (SELECT decision_id FROM _old_dec)"
     now_cur = current_outcome_sql(decision_filter=history)
-    was_cur = current_outcome_sql(decision_filter=f"{history} AND batch_id <= {b}")
     rows = (
-        f"SELECT {cols}, NULL::DOUBLE AS _crit, false AS _linked_only, 1.0 AS _w FROM _new_dec d "
-        f"UNION ALL SELECT {cols}, o.criterion, true, 1.0 "
+        f"SELECT {cols}, NULL::DOUBLE AS _crit, false AS _linked_only FROM _new_dec d "
+        f"UNION ALL SELECT {cols}, o.criterion, true "
         f"FROM _new_dec d JOIN ({new_out}) o USING (decision_id) "
-        f"UNION ALL SELECT {cols}, o.criterion, true, 1.0 "
-        f"FROM _old_dec d JOIN ({now_cur}) o USING (decision_id) "
-        f"UNION ALL SELECT {cols}, o.criterion, true, -1.0 "
-        f"FROM _old_dec d JOIN ({was_cur}) o USING (decision_id)"
+        f"UNION ALL SELECT {cols}, o.criterion, true "
+        f"FROM _old_dec d JOIN ({now_cur}) o USING (decision_id)"
     )
-    shifted = _shifted_rows(config, rows, extra="r._linked_only AS linked_only, r._w AS w, ")
+    kept = _in_buckets(skip, "r._bday", "r.decision_maker")
+    rows = f"SELECT * FROM ({rows}) r WHERE NOT {kept}"
+    shifted = _shifted_rows(config, rows, extra="r._linked_only AS linked_only, ")
     return (
         f"WITH _new_dec AS ({new_dec}), _old_dec AS ({old_dec}) "
         f"SELECT decision_maker, day, linked_only, max(team) AS team, "
-        f"{_sums(p, weight='w * ')} AS sums FROM ({shifted}) "
+        f"{_sums(p)} AS sums FROM ({shifted}) "
         "GROUP BY decision_maker, day, linked_only"
     )
 

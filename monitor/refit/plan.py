@@ -169,8 +169,9 @@ def window_sums(
 
 @dataclass
 class ScopeWindows:
-    """Windows of one scope ready to fit: keys, teams and end days (m,), and their
-    statistics (all rows, linked rows)."""
+    """Windows of one scope ready to fit: keys, teams and end days (m,), their
+    statistics (all rows, linked rows) and whether their sums lost too many digits to
+    be fitted from them (``StatLayout.lost_precision``; a pooled window: any member's)."""
 
     scope: str
     keys: np.ndarray
@@ -178,6 +179,7 @@ class ScopeWindows:
     end: np.ndarray
     all_rows: Moments
     linked: Moments
+    lost: np.ndarray
 
     def take(self, index: np.ndarray) -> ScopeWindows:
         return ScopeWindows(
@@ -187,6 +189,7 @@ class ScopeWindows:
             self.end[index],
             self.all_rows.take(index),
             self.linked.take(index),
+            self.lost[index],
         )
 
 
@@ -200,6 +203,7 @@ def decision_maker_windows(
     )
     live = layout.count(sums) > 0
     sums, win_ent, win_end = sums[live], win_ent[live], win_end[live]
+    lost = layout.lost_precision(sums)
     all_rows, linked = layout.finish(sums, buckets.shift[win_ent])
     return ScopeWindows(
         "decision_maker",
@@ -208,6 +212,7 @@ def decision_maker_windows(
         np.asarray(win_end, dtype=np.int64),
         all_rows,
         linked,
+        lost,
     )
 
 
@@ -225,7 +230,8 @@ def pooled_windows(per_dm: ScopeWindows, scope: str) -> ScopeWindows:
     if not len(src.end):
         z = np.array([], dtype=object)
         empty = Moments(np.zeros(0), np.zeros((0, 0)), np.zeros((0, 0, 0)))
-        return ScopeWindows(scope, z, z, np.array([], dtype=np.int64), empty, empty)
+        none = np.array([], dtype=np.int64)
+        return ScopeWindows(scope, z, z, none, empty, empty, none.astype(bool))
     names, name_ix = np.unique(label.astype(str), return_inverse=True)
     ends, end_ix = np.unique(src.end, return_inverse=True)
     cell = name_ix.astype(np.int64) * len(ends) + end_ix
@@ -234,4 +240,6 @@ def pooled_windows(per_dm: ScopeWindows, scope: str) -> ScopeWindows:
     linked = group_sums(src.linked, group, len(codes))
     keys = names[codes // len(ends)].astype(object)
     teams = keys if scope == "team" else np.full(len(codes), None, dtype=object)
-    return ScopeWindows(scope, keys, teams, ends[codes % len(ends)], all_rows, linked)
+    lost = np.zeros(len(codes), dtype=bool)
+    np.logical_or.at(lost, group, src.lost)
+    return ScopeWindows(scope, keys, teams, ends[codes % len(ends)], all_rows, linked, lost)

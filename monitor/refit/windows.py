@@ -4,8 +4,9 @@ Per (decision-maker, day) the store keeps the sufficient statistics of that day'
 judgments (``bucket_stats``, shifted sums; see ``moments_sql``).  A decision-maker's
 window is the sum of its days' buckets; team and all windows pool the decision-makers'
 windows.  A refresh adds to the stored buckets what the batches since the last refit
-changed - new decisions, new outcomes, outcome corrections (``moments_sql.delta_sql``)
-- and refits only the windows covering the changed buckets.  Its cost follows the
+changed - new decisions, new outcomes (``buckets.delta_sql``) - sums again the buckets
+something left (decision corrections and retractions, outcome corrections:
+``buckets.recompute_sql``) and refits only the windows covering the changed buckets.  Its cost follows the
 size of the news and of the windows it touches, not the length of history.
 
 Windows are ``length_days`` long and end every ``step_days`` days on dates aligned
@@ -33,6 +34,7 @@ from monitor.refit.buckets import (
     design_expressions,
     full_sql,
     new_shift_sql,
+    recompute_sql,
     shift_select,
 )
 from monitor.refit.fits_write import delete_windows, fit_tables, insert_arrow
@@ -50,7 +52,7 @@ from monitor.refit.plan import (
 from monitor.stats.lens import LensFits, fit_lens_or_rows
 from monitor.store.connection import Store, get_fact, set_fact
 from monitor.store.rules import quote_ident, utc_now
-from monitor.store.schema import replace_bucket_tables
+from monitor.store.schema import drop_temp_tables, replace_bucket_tables, stage_temp_table
 
 SCOPES = ("decision_maker", "team", "all")
 BUCKET_LAYOUT = "shifted-array-3"
@@ -185,7 +187,12 @@ def fit_windows(
             return raw_rows(windows.scope, windows.keys[i], int(windows.end[i]))
 
     fits, redone = fit_lens_or_rows(
-        windows.all_rows, windows.linked, names, min_rows=min_rows, rows_of=rows_of
+        windows.all_rows,
+        windows.linked,
+        names,
+        min_rows=min_rows,
+        rows_of=rows_of,
+        lost_precision=windows.lost,
     )
     method = np.array(["moments"] * fits.size, dtype=object)
     method[redone] = "qr"
@@ -308,7 +315,8 @@ def refit(config: Config, *, full: bool = False) -> RefitSummary:
 def _newest_batch(con) -> int:
     row = con.execute(
         "SELECT greatest(coalesce((SELECT max(batch_id) FROM decisions), 0), "
-        "coalesce((SELECT max(batch_id) FROM outcomes), 0))"
+        "coalesce((SELECT max(batch_id) FROM outcomes), 0), "
+        "coalesce((SELECT max(superseded_batch) FROM superseded_decisions), 0))"
     ).fetchall()[0]
     return int(row[0])
 
@@ -350,10 +358,35 @@ def _refit_full(con, config: Config, sig: str) -> RefitSummary:
     return RefitSummary("full", n_dirty, n_buckets, fitted, refitted, 0.0)
 
 
-def _fetch_delta(con, config: Config, layout: StatLayout, through: int) -> dict[str, np.ndarray]:
+# The temporary table of the buckets summed again from their rows in one refresh.
+_RESUM = "_resum_buckets"
+
+
+def _fetch_delta(
+    con, config: Config, layout: StatLayout, through: int
+) -> tuple[dict[str, np.ndarray], np.ndarray, np.ndarray]:
+    """Sum again from their rows the buckets the news take something out of
+    (``recompute_sql``), replacing their stored rows; then fetch what the news add to
+    the other buckets.  Returns the delta rows and the (decision-maker number, day) of
+    the buckets summed again."""
     row = con.execute("SELECT min(day), max(day) FROM dirty_buckets").fetchall()[0]
     day_range = None if row[0] is None else (row[0], row[1])
-    return _fetch_rows(con, layout, delta_sql(config, through, day_range))
+    stage_temp_table(con, _RESUM, recompute_sql(through, day_range))
+    try:
+        con.execute(
+            f"DELETE FROM bucket_stats b USING {_RESUM} r "
+            "WHERE b.decision_maker = r.decision_maker AND b.day = r.day"
+        )
+        con.execute(f"INSERT INTO bucket_stats {full_sql(config, only=_RESUM)}")
+        again = con.execute(
+            f"SELECT k.ent, (r.day - DATE '1970-01-01')::BIGINT FROM {_RESUM} r "
+            f"JOIN {_NUMBERED} k USING (decision_maker)"
+        ).fetchnumpy()
+        delta = _fetch_rows(con, layout, delta_sql(config, through, day_range, _RESUM))
+    finally:
+        drop_temp_tables(con, _RESUM)
+    ent, day = (np.asarray(v, dtype=np.int64) for v in again.values())
+    return delta, ent, day
 
 
 def _apply_delta(con, buckets: Buckets, delta: dict[str, np.ndarray]) -> tuple[Buckets, int]:
@@ -424,8 +457,10 @@ def _refit_incremental(con, config: Config, sig: str, through: int) -> RefitSumm
     if newest_batch <= through and not n_dirty:
         return RefitSummary("nothing to do", 0, 0, 0, 0, 0.0)
     con.execute(new_shift_sql(config, through))
-    delta = _fetch_delta(con, config, layout, through)
-    day = delta["day"]
+    delta, again_ent, again_day = _fetch_delta(con, config, layout, through)
+    # Every touched bucket: the delta's and those summed again.
+    day = np.concatenate([delta["day"], again_day])
+    touched_ent = np.concatenate([delta["ent"], again_ent])
     length = config.windows.length_days
     last_day = _last_day(con, day)
     newest = int(aligned_ends(config, last_day, last_day)[-1])
@@ -451,7 +486,7 @@ def _refit_incremental(con, config: Config, sig: str, through: int) -> RefitSumm
     )
     no_team = np.array([t is None for t in buckets.team], dtype=bool)
     team_ix = np.where(no_team, -1, team_ix)
-    d_ent = delta["ent"][rows]
+    d_ent = touched_ent[rows]
     every_dm = np.arange(len(buckets.keys))
     every_team = np.unique(team_ix[team_ix >= 0])
     wanted = {
@@ -469,6 +504,7 @@ def _refit_incremental(con, config: Config, sig: str, through: int) -> RefitSumm
         fitted += fitted_n
         refitted += refit_n
     set_fact(con, "last_refit", utc_now().isoformat())
+    changed += len(np.unique(again_ent * (1 << 32) + again_day))
     return RefitSummary("incremental", n_dirty, changed, fitted, refitted, 0.0)
 
 

@@ -495,14 +495,20 @@ def fit_lens_or_rows(
     *,
     min_rows: int,
     rows_of: Callable[[int], tuple[np.ndarray, np.ndarray, np.ndarray]] | None,
+    lost_precision: np.ndarray | None = None,
 ) -> tuple[LensFits, np.ndarray]:
-    """``fit_lens``, then every window it flags ``needs_raw_refit`` refitted from its raw
-    rows by QR (``fit_lens_rows``); ``rows_of(i)`` returns window i's (x, ys, ye).
+    """``fit_lens``, then every window it flags ``needs_raw_refit``, and every window
+    whose statistics the caller found to have lost precision (``lost_precision``, (m,)
+    bool: e.g. cancellation in shifted sums), refitted from its raw rows by QR
+    (``fit_lens_rows``); ``rows_of(i)`` returns window i's (x, ys, ye).
 
     The one fallback rule of the refit stage and the audit pack.  Returns the fits and
     the indices of the windows refitted from rows (none when ``rows_of`` is None)."""
     fits = fit_lens(all_rows, linked, names, min_rows=min_rows)
-    redo = np.flatnonzero(fits.needs_raw_refit)
+    redo_mask = fits.needs_raw_refit
+    if lost_precision is not None:
+        redo_mask = redo_mask | np.asarray(lost_precision, dtype=bool)
+    redo = np.flatnonzero(redo_mask)
     if not len(redo) or rows_of is None:
         return fits, redo[:0]
     refits = [fit_lens_rows(*rows_of(int(i)), names, min_rows=min_rows) for i in redo]

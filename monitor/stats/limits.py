@@ -17,6 +17,10 @@ COLLINEAR_CONDITION = 1e12
 # Between this and COLLINEAR_CONDITION a window is refitted from its raw rows by QR:
 # the normal equations lose about log10(condition) digits, QR about half as many.
 RAW_REFIT_CONDITION = 1e7
+# A window's sums are shifted (refit.buckets); a variable whose centred sum of squares is
+# below this fraction of its shifted one lost about 7 of 16 digits to cancellation, the
+# same budget as RAW_REFIT_CONDITION, and the window is refitted from its raw rows.
+RAW_REFIT_CANCELLATION = 1e-7
 # A Cholesky pivot (1 - R^2 of a cue on the cues before it) below this means the
 # condition number exceeds 1 / PIVOT_FLOOR > COLLINEAR_CONDITION.
 PIVOT_FLOOR = 1e-13

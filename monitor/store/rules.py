@@ -113,6 +113,28 @@ def current_outcome_rows_sql(where: str | None = None, *, count_versions: bool =
     )
 
 
+# --- which version of a decision counts ---------------------------------------------
+
+# `decisions` holds every decision as it now stands (one row per id: readers that want
+# the present read it directly).  A correction or retraction moves the row it replaces
+# to `superseded_decisions` (migration 8) with these columns added, so the history is
+# kept and a version's life is [ingested_at, superseded_at).
+SUPERSEDED_COLUMNS = ("superseded_batch", "superseded_line", "superseded_at", "superseded_change")
+CORRECTED = "corrected"
+RETRACTED = "retracted"
+
+
+def decisions_known_at_sql() -> str:
+    """The decisions as they were known at a moment, one row per id, with the columns of
+    ``decisions``: the version ingested by then and not superseded by then (a decision
+    retracted by then has none).  Bind the moment to each of its three ``?``."""
+    return (
+        "SELECT * FROM decisions WHERE ingested_at <= ?::TIMESTAMPTZ UNION ALL BY NAME "
+        f"SELECT * EXCLUDE ({', '.join(SUPERSEDED_COLUMNS)}) FROM superseded_decisions "
+        "WHERE ingested_at <= ?::TIMESTAMPTZ AND superseded_at > ?::TIMESTAMPTZ"
+    )
+
+
 # --- as-of ---------------------------------------------------------------------------
 
 
@@ -157,6 +179,10 @@ RESERVED_COLUMN_NAMES = frozenset(
         "outcome_batch_id",
         "outcome_ingested_at",
         "source_line",
+        "superseded_at",
+        "superseded_batch",
+        "superseded_change",
+        "superseded_line",
         "team",
     }
 )

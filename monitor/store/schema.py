@@ -309,6 +309,33 @@ MIGRATIONS: list[tuple[int, str, list[str]]] = [
         ],
     ),
     (
+        8,
+        "superseded_decisions: every version of a decision that a later correction or "
+        "retraction replaced",
+        [
+            # `decisions` keeps each decision as it now stands; a correction or
+            # retraction moves the row it replaces here, with the batch, line and time
+            # of the change and what it was (corrected | retracted).  Cue columns are
+            # added beside those of `decisions` (sync_cue_columns).  The decisions known
+            # at a moment: store.rules.decisions_known_at_sql.
+            """CREATE TABLE superseded_decisions (
+                decision_id VARCHAR NOT NULL,
+                decided_at TIMESTAMPTZ NOT NULL,
+                decided_day DATE NOT NULL,
+                decision_maker VARCHAR NOT NULL,
+                team VARCHAR,
+                judgment DOUBLE NOT NULL,
+                batch_id BIGINT NOT NULL,
+                ingested_at TIMESTAMPTZ NOT NULL,
+                source_line BIGINT,
+                superseded_batch BIGINT NOT NULL,
+                superseded_line BIGINT,
+                superseded_at TIMESTAMPTZ NOT NULL,
+                superseded_change VARCHAR NOT NULL
+            )""",
+        ],
+    ),
+    (
         9,
         "batches: the clock that stamped the batch (system, or simulated by the demo)",
         [
@@ -360,14 +387,20 @@ def apply_migrations(con: duckdb.DuckDBPyConnection) -> list[int]:
     return applied
 
 
-def decision_columns(con: duckdb.DuckDBPyConnection) -> dict[str, str]:
-    """The ``decisions`` table's columns and their DuckDB types."""
+def decision_columns(con: duckdb.DuckDBPyConnection, table: str = "decisions") -> dict[str, str]:
+    """The ``decisions`` table's (or ``table``'s) columns and their DuckDB types."""
     return dict(
         con.execute(
             "SELECT column_name, data_type FROM information_schema.columns "
-            "WHERE table_name = 'decisions' AND table_schema = 'main'"
+            "WHERE table_name = ? AND table_schema = 'main'",
+            [table],
         ).fetchall()
     )
+
+
+# Tables that carry one column per cue: the decisions as they stand and the versions
+# corrections and retractions replaced (migration 8).
+_CUE_TABLES = ("decisions", "superseded_decisions")
 
 
 class CueSource(Protocol):
@@ -384,19 +417,21 @@ def sync_cue_columns(con: duckdb.DuckDBPyConnection, config: CueSource) -> list[
 
     A cue whose configured type no longer matches its stored column raises
     ``StoreMismatch`` (rename the cue or use a new store)."""
-    existing = decision_columns(con)
     added: list[str] = []
-    for name, cue in config.cues.items():
-        wanted = cue_sql_type(cue.type)
-        if name in existing:
-            if existing[name] != wanted:
-                raise StoreMismatch(
-                    f"cue '{name}' is stored as {existing[name]} but configured as "
-                    f"{cue.type}; rename the cue or use a new store."
-                )
-            continue
-        con.execute(f"ALTER TABLE decisions ADD COLUMN {quote_ident(name)} {wanted}")
-        added.append(name)
+    for table in _CUE_TABLES:
+        existing = decision_columns(con, table)
+        for name, cue in config.cues.items():
+            wanted = cue_sql_type(cue.type)
+            if name in existing:
+                if existing[name] != wanted:
+                    raise StoreMismatch(
+                        f"cue '{name}' is stored as {existing[name]} but configured as "
+                        f"{cue.type}; rename the cue or use a new store."
+                    )
+                continue
+            con.execute(f"ALTER TABLE {table} ADD COLUMN {quote_ident(name)} {wanted}")
+            if table == "decisions":
+                added.append(name)
     return added
 
 
@@ -405,7 +440,7 @@ def check_ready(con: duckdb.DuckDBPyConnection, config: CueSource) -> str | None
     a sentence that starts with the store's path."""
     if current_version(con) < latest_version():
         return "is not initialised or needs migrating: run 'cuewatch init' first."
-    missing = [c for c in config.cues if c not in decision_columns(con)]
+    missing = [c for t in _CUE_TABLES for c in config.cues if c not in decision_columns(con, t)]
     if missing:
         return f"has no column for cue(s) {', '.join(missing)}: run 'cuewatch init'."
     return None
@@ -413,7 +448,7 @@ def check_ready(con: duckdb.DuckDBPyConnection, config: CueSource) -> str | None
 
 # Tables that share a name space with the cue columns: cues are columns of `decisions`,
 # and the views put `outcomes`' columns beside them.
-_CUE_NEIGHBOURS = ("decisions", "outcomes")
+_CUE_NEIGHBOURS = ("decisions", "outcomes", "superseded_decisions")
 
 
 # Views over the policy findings: cues never share a query with them.
