@@ -4,15 +4,21 @@ from __future__ import annotations
 
 from collections.abc import Sequence
 from datetime import date
+from typing import TYPE_CHECKING
 
 import numpy as np
-import pandas as pd
 
 from monitor.cautions import CAUTION, LINEAR_PROBABILITY_NOTE, LINKED_OUTCOMES_NOTE
 from monitor.config import Config
 from monitor.stats.lens import LENS_FIGURES
 from monitor.store.connection import Store
 from monitor.store.rules import quote_ident
+
+if TYPE_CHECKING:
+    import pandas as pd
+
+# pandas is imported where it is used: `cuewatch refit` imports this package but never
+# reads fits, and pandas costs it ~0.2 s of start-up.
 
 FIT_FIELDS = [
     "scope",
@@ -129,6 +135,8 @@ _DATA_SPAN_SQL = """
 
 def data_spans(con) -> dict[tuple[str, str], tuple[date, date]]:
     """(scope, key) -> the first and last day with decisions of every stored series."""
+    import pandas as pd
+
     return {
         (r.scope, r.key): (pd.Timestamp(r.first_day).date(), pd.Timestamp(r.last_day).date())
         for r in con.execute(_DATA_SPAN_SQL).df().itertuples(index=False)
@@ -149,6 +157,8 @@ def held_days(start: date, end: date, span: tuple[date, date] | None) -> tuple[d
 def _with_extras(fits: pd.DataFrame, spans: dict) -> pd.DataFrame:
     """``fits`` (FIT_FIELDS, reason, df_resid) with EXTRA_FIELDS in place of df_resid."""
     from types import SimpleNamespace
+
+    import pandas as pd
 
     from monitor.stats.trends import achievement_floor, consistency_floor
 
@@ -186,6 +196,8 @@ def window_label(fit: dict) -> str:
 
 
 def _clean(d: dict) -> dict:
+    import pandas as pd
+
     out = {}
     for k, v in d.items():
         if isinstance(v, float) and not np.isfinite(v):
