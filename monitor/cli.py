@@ -9,6 +9,7 @@ sentence on stderr after the normal output.
 
 from __future__ import annotations
 
+import contextlib
 import functools
 import json
 import sys
@@ -148,14 +149,32 @@ def quarantine(
         click.echo(result.describe())
 
 
+@contextlib.contextmanager
+def _busy(label: str, enabled: bool):
+    """A spinner with ``label`` on stderr while long work runs, when stderr is a terminal
+    (never in --json output or a pipe)."""
+    if not enabled or not sys.stderr.isatty():
+        yield
+        return
+    from rich.console import Console
+
+    with Console(stderr=True).status(label):
+        yield
+
+
 def _with_progress(run, enabled: bool):
     """Run ``run(on_file)`` with a rich progress bar on stderr when it is a terminal."""
     if not enabled or not sys.stderr.isatty():
         return run(None)
+    from rich.console import Console
     from rich.progress import BarColumn, MofNCompleteColumn, Progress, TextColumn
 
     with Progress(
-        TextColumn("{task.description}"), BarColumn(), MofNCompleteColumn(), transient=True
+        TextColumn("{task.description}"),
+        BarColumn(),
+        MofNCompleteColumn(),
+        transient=True,
+        console=Console(stderr=True),
     ) as progress:
         task = progress.add_task("ingest", total=None)
 
@@ -174,7 +193,8 @@ def refit(obj: Context, full: bool, as_json: bool) -> None:
     """Bring the rolling window fits up to date (incremental by default)."""
     from monitor.refit.windows import refit as run_refit
 
-    summary = run_refit(obj.config, full=full)
+    with _busy("Refitting the rolling windows ...", enabled=not as_json):
+        summary = run_refit(obj.config, full=full)
     if as_json:
         print_json(summary.to_json())
         return
@@ -314,15 +334,16 @@ def export(
     """Write the quarterly audit tables (CSV, Parquet, XLSX, HTML) with a manifest."""
     from monitor.audit.pack import export as run_export
 
-    result = run_export(
-        obj.config,
-        quarter=quarter,
-        out_dir=Path(out_dir),
-        as_of=as_of,
-        formats=[f.strip() for f in formats.split(",") if f.strip()],
-        include_rows=list(include_rows),
-        compare=compare,
-    )
+    with _busy("Writing the audit pack ...", enabled=not as_json):
+        result = run_export(
+            obj.config,
+            quarter=quarter,
+            out_dir=Path(out_dir),
+            as_of=as_of,
+            formats=[f.strip() for f in formats.split(",") if f.strip()],
+            include_rows=list(include_rows),
+            compare=compare,
+        )
     if as_json:
         print_json(result)
     else:
@@ -404,15 +425,21 @@ def ack(obj: Context, alert_id: int, by: str, note: str, as_json: bool) -> None:
 
 @main.command()
 @click.option("--json", "as_json", is_flag=True, help="Print the summary as JSON.")
+@click.option(
+    "--list-skipped",
+    is_flag=True,
+    help="List every file skipped as already ingested in --json (default: their count).",
+)
 @click.pass_obj
 @handles_user_errors
-def nightly(obj: Context, as_json: bool) -> None:
+def nightly(obj: Context, as_json: bool, list_skipped: bool) -> None:
     """Run ingest -> refit -> assess once (for cron / systemd timers)."""
     from monitor.nightly import run_nightly
 
-    summary = run_nightly(obj.config)
+    with _busy("Nightly run: ingest, refit, assess ...", enabled=not as_json):
+        summary = run_nightly(obj.config)
     if as_json:
-        print_json(summary.to_json())
+        print_json(summary.to_json(list_skipped=list_skipped))
     else:
         click.echo(summary.describe())
     if summary.status == "ok_with_failed_deliveries":

@@ -32,8 +32,16 @@ class NightlySummary:
     assess: dict = field(default_factory=dict)
     message: str = ""
 
-    def to_json(self) -> dict:
-        return self.__dict__.copy()
+    def to_json(self, *, list_skipped: bool = False) -> dict:
+        """The `nightly --json` document.  Files skipped as already ingested (most of a
+        landing folder, every night) are counted in ``ingest.skipped_files`` and listed
+        only with ``list_skipped``."""
+        out = self.__dict__.copy()
+        files = out.get("ingest", {}).get("files")
+        if files is not None and not list_skipped:
+            kept = [f for f in files if f.get("status") != "skipped"]
+            out["ingest"] = {**out["ingest"], "files": kept}
+        return out
 
     def describe(self) -> str:
         """One line for a person."""
