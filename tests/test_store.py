@@ -13,10 +13,11 @@ import textwrap
 import time
 from pathlib import Path
 
+import duckdb
 import pytest
 from helpers.cli import run_cli, text
 from helpers.configs import REPO, base_config, make_config, write_config
-from helpers.store_rows import query
+from helpers.store_rows import query, store_path
 
 from monitor.config import load_config
 from monitor.store.connection import Store, StoreBusy
@@ -55,11 +56,11 @@ def test_init_creates_the_documented_tables(tmp_path):
 def test_second_init_is_a_no_op(tmp_path):
     cfg = make_config(tmp_path)
     _init_json(cfg)
-    before = query(cfg, "SELECT version, applied_at FROM schema_migrations ORDER BY version")
+    before = query(cfg, "SELECT version, applied_at FROM store_versions ORDER BY version")
     again = _init_json(cfg)
     assert again["created"] is False
     assert again["applied"] == [] and again["cue_columns_added"] == []
-    after = query(cfg, "SELECT version, applied_at FROM schema_migrations ORDER BY version")
+    after = query(cfg, "SELECT version, applied_at FROM store_versions ORDER BY version")
     assert after == before  # no new migration rows
     proc = run_cli(cfg, "init")
     assert "up to date" in text(proc)[0]
@@ -83,7 +84,7 @@ def test_adding_a_cue_adds_its_column(tmp_path):
         )
     )
     assert cols["night_call"] == "DOUBLE" and cols["channel"] == "VARCHAR"
-    assert len(query(cfg, "SELECT * FROM schema_migrations")) == len(MIGRATIONS)
+    assert len(query(cfg, "SELECT * FROM store_versions")) == len(MIGRATIONS)
 
 
 def test_a_changed_cue_type_is_a_user_error(tmp_path):
@@ -228,3 +229,59 @@ def test_reader_on_a_missing_store_says_run_init(tmp_path):
     store = Store(load_config(make_config(tmp_path)))
     with pytest.raises(StoreMismatch, match="init"), store.reader():
         pass
+
+
+# --- the table of applied migrations -------------------------------------------------------
+
+_TABLES = "SELECT table_name FROM information_schema.tables WHERE table_schema = 'main'"
+_HISTORY = "SELECT version, description, applied_at, software_version FROM {} ORDER BY version"
+
+
+def _as_a_former_store(cfg: Path) -> list[tuple]:
+    """Give an initialised store the migration table's former name, as stores made before
+    the rename have it, and return that table's rows."""
+    con = duckdb.connect(str(store_path(cfg)))
+    try:
+        con.execute("ALTER TABLE store_versions RENAME TO schema_migrations")
+        return con.execute(_HISTORY.format("schema_migrations")).fetchall()
+    finally:
+        con.close()
+
+
+def test_a_new_store_lists_its_migrations_in_store_versions(tmp_path):
+    cfg = make_config(tmp_path)
+    _init_json(cfg)
+    tables = {r[0] for r in query(cfg, _TABLES)}
+    assert "store_versions" in tables and "schema_migrations" not in tables
+    versions = [r[0] for r in query(cfg, _HISTORY.format("store_versions"))]
+    assert versions == sorted(v for v, _, _ in MIGRATIONS)
+
+
+def test_init_renames_a_former_migration_table_and_keeps_its_history(tmp_path):
+    cfg = make_config(tmp_path)
+    _init_json(cfg)
+    before = _as_a_former_store(cfg)
+    assert len(before) == len(MIGRATIONS)
+    # Until the next init, readers still find the store up to date (no "run init").
+    proc = run_cli(cfg, "fits", "--json")
+    assert proc.returncode == 0, text(proc)
+    again = _init_json(cfg)
+    assert again["applied"] == [] and again["schema_version"] == latest_version()
+    tables = {r[0] for r in query(cfg, _TABLES)}
+    assert "store_versions" in tables and "schema_migrations" not in tables
+    assert query(cfg, _HISTORY.format("store_versions")) == before  # same rows, same times
+
+
+def test_a_writer_that_checks_the_store_renames_a_former_migration_table(tmp_path):
+    cfg = make_config(tmp_path)
+    _init_json(cfg)
+    before = _as_a_former_store(cfg)
+    store = Store(load_config(cfg))
+    with store.reader() as con:
+        store.ensure_ready(con)  # a read-only check leaves the store as it is
+    assert "schema_migrations" in {r[0] for r in query(cfg, _TABLES)}
+    with store.writer() as con:
+        store.ensure_ready(con)
+    tables = {r[0] for r in query(cfg, _TABLES)}
+    assert "store_versions" in tables and "schema_migrations" not in tables
+    assert query(cfg, _HISTORY.format("store_versions")) == before

@@ -25,7 +25,11 @@ from monitor.store.rules import (
     utc_now,
 )
 
-SCHEMA_VERSION_TABLE = "schema_migrations"
+# The table that records which migrations a store has had.  Stores made before it had
+# this name kept the list as ``schema_migrations``: ``init`` (and any writer that checks
+# the store) renames that table, history and all; until then readers read it there.
+SCHEMA_VERSION_TABLE = "store_versions"
+FORMER_VERSION_TABLE = "schema_migrations"
 
 
 class StoreMismatch(UserError):
@@ -355,18 +359,49 @@ def latest_version() -> int:
     return max(v for v, _, _ in MIGRATIONS)
 
 
+def _has_table(con: duckdb.DuckDBPyConnection, name: str) -> bool:
+    return bool(
+        con.execute(
+            "SELECT count(*) FROM information_schema.tables "
+            "WHERE table_name = ? AND table_schema = 'main'",
+            [name],
+        ).fetchone()[0]
+    )
+
+
+def version_table(con: duckdb.DuckDBPyConnection) -> str | None:
+    """The table holding the store's migration list: SCHEMA_VERSION_TABLE, or
+    FORMER_VERSION_TABLE in a store not renamed yet; None in a store without one."""
+    for name in (SCHEMA_VERSION_TABLE, FORMER_VERSION_TABLE):
+        if _has_table(con, name):
+            return name
+    return None
+
+
+def adopt_former_version_table(con: duckdb.DuckDBPyConnection) -> bool:
+    """Rename a store's FORMER_VERSION_TABLE to SCHEMA_VERSION_TABLE (its rows unchanged)
+    on a read-write connection; True when it did.  No-op once renamed or when the new
+    table already exists."""
+    if _has_table(con, SCHEMA_VERSION_TABLE) or not _has_table(con, FORMER_VERSION_TABLE):
+        return False
+    con.execute(f"ALTER TABLE {FORMER_VERSION_TABLE} RENAME TO {SCHEMA_VERSION_TABLE}")
+    return True
+
+
+def is_read_only(con: duckdb.DuckDBPyConnection) -> bool:
+    return con.execute("SELECT current_setting('access_mode')").fetchone()[0] == "read_only"
+
+
 def current_version(con: duckdb.DuckDBPyConnection) -> int:
-    exists = con.execute(
-        "SELECT count(*) FROM information_schema.tables WHERE table_name = ?",
-        [SCHEMA_VERSION_TABLE],
-    ).fetchone()[0]
-    if not exists:
+    table = version_table(con)
+    if table is None:
         return 0
-    row = con.execute(f"SELECT max(version) FROM {SCHEMA_VERSION_TABLE}").fetchone()
+    row = con.execute(f"SELECT max(version) FROM {table}").fetchone()
     return int(row[0] or 0)
 
 
 def apply_migrations(con: duckdb.DuckDBPyConnection) -> list[int]:
+    adopt_former_version_table(con)
     con.execute(
         f"CREATE TABLE IF NOT EXISTS {SCHEMA_VERSION_TABLE} ("
         "version INTEGER NOT NULL, description VARCHAR, applied_at TIMESTAMPTZ NOT NULL, "
@@ -437,7 +472,10 @@ def sync_cue_columns(con: duckdb.DuckDBPyConnection, config: CueSource) -> list[
 
 def check_ready(con: duckdb.DuckDBPyConnection, config: CueSource) -> str | None:
     """Why the store cannot be used with ``config`` yet (None when it can): the rest of
-    a sentence that starts with the store's path."""
+    a sentence that starts with the store's path.  On a read-write connection a store
+    whose migration list still has its former name gets it renamed first."""
+    if not is_read_only(con):
+        adopt_former_version_table(con)
     if current_version(con) < latest_version():
         return "is not initialised or needs migrating: run 'cuewatch init' first."
     missing = [c for t in _CUE_TABLES for c in config.cues if c not in decision_columns(con, t)]
