@@ -12,8 +12,10 @@ vector z = (x_1 .. x_k, Ys, Ye), each as one fixed-size array of *shifted sums*
 Why this shape: plain sums of cross-products lose digits when cues have large means
 (an amount in pounds, a date).  Each row is shifted by a per-decision-maker reference
 ``c`` (``bucket_shifts``: the decision-maker's medians when first seen, cut to 20
-significant bits) before its products are summed with plain ``sum``, so the summed terms
-are near zero.  A median, not a mean: one extreme value cannot drag the reference away
+significant bits; a full refit takes the medians of their first ``kernel.SHIFT_ROWS`` rows)
+before its products are summed with plain ``sum``, so the summed terms are near zero.
+A full refit sums in memory with a compiled kernel (``refit.kernel``); ``full_sql`` is the
+reference it is tested against and what a nightly refit sums buckets again with.  A median, not a mean: one extreme value cannot drag the reference away
 from the rest of a person's rows, so it affects only the windows that contain it.  Because every bucket of one decision-maker shares its shift, the
 statistics of any set of that decision-maker's days are the plain sums of the buckets'
 arrays - the shifted form of the pairwise update, exact in real arithmetic - and

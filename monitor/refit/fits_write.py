@@ -33,13 +33,14 @@ def _list_column(rows: np.ndarray) -> pa.Array:
     return pa.ListArray.from_arrays(offsets, pa.array(np.ascontiguousarray(rows).ravel()))
 
 
-def insert_arrow(con, table: str, data: pa.Table) -> None:
-    """Append ``data`` to ``table`` (columns matched by name)."""
+def insert_arrow(con, table: str, data: pa.Table, where: str = "TRUE") -> None:
+    """Append the rows of ``data`` matching ``where`` to ``table`` (columns matched by
+    name)."""
     name = f"_new_{table}"
     con.register(name, data)
     try:
         cols = ", ".join(quote_ident(c) for c in data.column_names)
-        con.execute(f"INSERT INTO {table} ({cols}) SELECT {cols} FROM {name}")
+        con.execute(f"INSERT INTO {table} ({cols}) SELECT {cols} FROM {name} WHERE {where}")
     finally:
         con.unregister(name)
 

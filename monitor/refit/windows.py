@@ -35,7 +35,6 @@ from monitor.refit.buckets import (
     full_sql,
     new_shift_sql,
     recompute_sql,
-    shift_select,
 )
 from monitor.refit.fits_write import delete_windows, fit_tables, insert_arrow
 from monitor.refit.plan import (
@@ -330,23 +329,22 @@ def _count_dirty(con) -> int:
 
 
 def _refit_full(con, config: Config, sig: str) -> RefitSummary:
+    """Every bucket summed in memory from the stored rows (``full.sum_buckets``), written
+    once, and every window computed from the buckets in memory."""
+    from monitor.refit.full import sum_buckets, write_buckets  # numba: the full refit only
+
     layout = _layout(config)
     newest_batch = _newest_batch(con)
     n_dirty = _count_dirty(con)
     replace_bucket_tables(con, layout.p_linked, layout.set_width)
-    con.execute(f"INSERT INTO bucket_shifts {shift_select(config, 'TRUE')}")
-    # In day order, for the same reason as the fits (``_fit_and_write``).
-    con.execute(
-        f"INSERT INTO bucket_stats {full_sql(config)} ORDER BY day, decision_maker, linked_only"
-    )
     con.execute("DELETE FROM dirty_buckets")
     con.execute("DELETE FROM fits")
     con.execute("DELETE FROM cue_weights")
-    buckets = _fetch_buckets(con, layout, None)
-    _release_cache(con)
-    fitted = refitted = 0
-    n_buckets = len(np.unique(buckets.ent * (1 << 32) + buckets.day))
-    if len(buckets.day):
+    buckets = sum_buckets(con, config, layout)
+    fitted = refitted = n_buckets = 0
+    if buckets is not None:
+        n_buckets = write_buckets(con, layout, buckets)
+        _release_cache(con)
         ends = aligned_ends(config, int(buckets.day.min()), int(buckets.day.max()))
         for windows in _all_windows(config, buckets, ends).values():
             fitted_n, refit_n = _fit_and_write(con, config, sig, windows)
