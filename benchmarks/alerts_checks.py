@@ -138,6 +138,8 @@ def evaluate(
     n_needed = config.policy.consecutive_windows
     for a, b in zip(np.r_[0, cut], np.r_[cut, len(states)], strict=True):
         kind, cue, who = keys[a, 0], keys[a, 2], index[a]
+        if kind == "drift" and cue in config.policy.forbidden:
+            continue  # reported, never alerted: the forbidden-cue check watches it
         seq = [bool(f) if ok else None for f, ok in zip(flagged[a:b], assessable[a:b], strict=True)]
         found = episodes(seq, n_needed)
         if not persons.planted[who]:

@@ -14,9 +14,10 @@ configuration is the shipped default (``monitor.config.PolicyConfig`` and
 Reported per rule and volume: (a) false alerts (episodes opened) per 100 innocent
 person-cue-years for each alert kind, the time base being the span of the weekly looks
 (from the first full window; for drift from the first look with a non-overlapping
-predecessor), with an exact Poisson 95 % upper bound; drift counts every cue as a
-series, as the alerts do (7 per person: the three-level region is one cue with one joint
-verdict), consistency one per person; (b) detection delay in weeks from the
+predecessor), with an exact Poisson 95 % upper bound; drift counts every permitted cue
+as a series, as the alerts do (6 per person: the three-level region is one cue with one
+joint verdict; the forbidden cue's weight is the forbidden-cue check's), consistency one
+per person; (b) detection delay in weeks from the
 change to the first weekly look at which an alert of the planted kind on the planted
 cue is open (median and 90th percentile over the planted persons detected within 52
 weeks; never-detected persons are counted apart).  When the goals (<= 1 false

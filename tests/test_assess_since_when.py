@@ -23,9 +23,11 @@ def demo_config(tmp_path_factory) -> Path:
 
 def test_drift_alert_on_a_planted_step_dates_the_change(demo_config):
     # Source: the scenario's own record of what it planted (synthetic_logs, truth.json):
-    # one handler starts weighting a forbidden cue's level on a given day (a step).
+    # one handler starts weighting a permitted cue (the proxy) much more on a given day
+    # (a step).  A forbidden cue's step is the forbidden-cue check's, not drift's.
     truth = load_truth(demo_config.parent / "scenario")
-    step = next(c for c in truth.changes if c.kind == "forbidden_cue_direct")
+    step = next(c for c in truth.changes if c.kind == "proxy_cue")
+    assert step.start == step.end and step.mode == "set", "a step, not a ramp"
     alerts = [
         a
         for a in list_alerts(load_config(demo_config))
@@ -34,6 +36,11 @@ def test_drift_alert_on_a_planted_step_dates_the_change(demo_config):
         and a["cue"] == cue_of(step.parameter)
     ]
     assert alerts, "the planted step should raise a drift alert on its cue"
+    forbidden = load_config(demo_config).policy.forbidden
+    assert not any(
+        a["kind"] == "drift" and a["cue"] in forbidden
+        for a in list_alerts(load_config(demo_config))
+    ), "a forbidden cue's weight is watched by the forbidden-cue check, not by drift"
     since = alerts[0]["evidence"]["since"]
     estimate = date.fromisoformat(since["estimate"])
     low, high = date.fromisoformat(since["low"]), date.fromisoformat(since["high"])

@@ -61,6 +61,7 @@ FINDING_COLUMNS = [
 ]
 PROXY_COLUMNS = ["decision_maker", "cue", "level", "window_end", "proxy_cue", "part", "std_part"]
 JOINT = "(all cues)"
+FORBIDDEN_DRIFT = "a forbidden cue: its weight is watched by the forbidden-cue check, not by drift"
 
 
 @dataclass(frozen=True)
@@ -303,6 +304,10 @@ def drift_findings(config: Config, w: StoredWindows) -> pd.DataFrame:
     for cue in dict.fromkeys(cue_of(n) for n in names):
         columns = cue_columns(names, cue)
         single = len(columns) == 1
+        # A forbidden cue's weight is watched by the forbidden-cue check (is it non-zero?);
+        # a second check on the same weight (did it move?) would double its false-alarm
+        # budget, so its drift is reported, never flagged.
+        watched = cue in config.policy.forbidden
         levels = []
         for j in columns:
             rows = _base_rows(w.meta, cur, "drift")
@@ -319,7 +324,10 @@ def drift_findings(config: Config, w: StoredWindows) -> pd.DataFrame:
             ok = np.isfinite(drift.p_value[:, j]) & both_large
             rows["assessable"] = ok
             rows["reason"] = [r or None for r in drift.reason]
-            if single:
+            if single and watched:
+                rows["flagged"] = False
+                rows["reason"] = [_joined(r, FORBIDDEN_DRIFT) for r in drift.reason]
+            elif single:
                 with np.errstate(invalid="ignore"):
                     rows["flagged"] = (
                         ok
@@ -331,21 +339,21 @@ def drift_findings(config: Config, w: StoredWindows) -> pd.DataFrame:
                 rows["flagged"] = None
             levels.append(rows)
         if not single:
-            frames.append(
-                _cue_drift_row(
-                    w,
-                    cur,
-                    first,
-                    second,
-                    columns,
-                    cue,
-                    alpha,
-                    min_std,
-                    both_large,
-                    drift.reason,
-                    config.windows.length_days,
-                )
+            verdict = _cue_drift_row(
+                w,
+                cur,
+                first,
+                second,
+                columns,
+                cue,
+                alpha,
+                min_std,
+                both_large,
+                drift.reason,
+                config.windows.length_days,
+                watched,
             )
+            frames.append(verdict)
         frames += levels
     joint = _base_rows(w.meta, cur, "drift")
     joint["cue"] = JOINT
@@ -361,11 +369,12 @@ def drift_findings(config: Config, w: StoredWindows) -> pd.DataFrame:
 
 
 def _cue_drift_row(
-    w, cur, first, second, columns, cue, alpha, min_std, both_large, reason, length
+    w, cur, first, second, columns, cue, alpha, min_std, both_large, reason, length, watched
 ) -> pd.DataFrame:
     """A categorical cue's drift verdict: the joint Wald test over its dummies, sized by
     the reference-invariant change sqrt(d' S d) / sd(Ys) (S the dummies' covariance in
-    the current window: the spread of the judgment the change moves)."""
+    the current window: the spread of the judgment the change moves).  ``watched``: a
+    forbidden cue, reported and never flagged (see ``drift_findings``)."""
     stat, df, p = cue_drift(first, second, columns)
     rows = _base_rows(w.meta, cur, "drift")
     rows["cue"], rows["level"], rows["level_detail"] = cue, None, False
@@ -380,12 +389,20 @@ def _cue_drift_row(
     rows["std_weight"] = size
     rows["p_value"], rows["statistic"] = p, stat
     ok = np.isfinite(p) & both_large
+    rows["assessable"] = ok
+    if watched:
+        rows["flagged"] = False
+        rows["reason"] = [_joined(r, FORBIDDEN_DRIFT) for r in reason]
+        return rows
     with np.errstate(invalid="ignore"):
         rows["flagged"] = ok & (p < alpha) & (size >= min_std)
-    rows["assessable"] = ok
     rows["reason"] = [r or None for r in reason]
     _since_when(rows, w, cur, list(columns), length)
     return rows
+
+
+def _joined(reason: str, note: str) -> str:
+    return f"{reason}; {note}" if reason else note
 
 
 def _floor_interval(rows: pd.DataFrame, check) -> None:
