@@ -16,16 +16,11 @@ import numpy as np
 import pandas as pd
 
 from benchmarks.alerts_world import NAMES, Persons, Plant
-from monitor.assess import findings as findings_module
+from monitor.assess import drift as drift_module
 from monitor.assess.alerts import _window_states
-from monitor.assess.findings import (
-    FINDING_COLUMNS,
-    StoredWindows,
-    _below_policy_minimum,
-    drift_findings,
-    floor_findings,
-    forbidden_findings,
-)
+from monitor.assess.drift import drift_findings
+from monitor.assess.findings import _below_policy_minimum, floor_findings, forbidden_findings
+from monitor.assess.stored import FINDING_COLUMNS, StoredWindows
 from monitor.config import Config
 from monitor.stats.episodes import episodes
 
@@ -165,7 +160,7 @@ def _change_points(*, keep: bool):
         for column in ("change_day", "change_low", "change_high"):
             rows[column] = None
 
-    with mock.patch.object(findings_module, "_since_when", empty):
+    with mock.patch.object(drift_module, "_since_when", empty):
         yield
 
 

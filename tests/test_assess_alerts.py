@@ -31,7 +31,7 @@ from helpers.demo_store import build_demo_store
 from helpers.local_servers import SmtpInbox, WebhookReceiver, free_port
 
 from monitor.assess.alerts import _reconcile, acknowledge, assess, list_alerts
-from monitor.assess.findings import FINDING_COLUMNS
+from monitor.assess.stored import FINDING_COLUMNS
 from monitor.config import load_config
 from monitor.store.connection import Store
 from synthetic_logs.ostwyn import load_truth

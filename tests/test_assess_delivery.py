@@ -49,8 +49,8 @@ from helpers.local_servers import SmtpInbox, WebhookReceiver, free_port
 from helpers.store_rows import query
 
 from monitor.assess.alerts import _reconcile, acknowledge, assess
-from monitor.assess.findings import FINDING_COLUMNS
 from monitor.assess.outbox import delivery_claim
+from monitor.assess.stored import FINDING_COLUMNS
 from monitor.config import ConfigError, load_config
 from monitor.store.connection import Store
 

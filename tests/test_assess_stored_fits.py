@@ -11,7 +11,8 @@ import pandas as pd
 import statsmodels.api as sm
 from helpers.configs import write_config
 
-from monitor.assess.findings import evaluate, forbidden_findings, load_windows
+from monitor.assess.findings import evaluate, forbidden_findings
+from monitor.assess.stored import load_windows
 from monitor.config import load_config
 from monitor.ingest import ingest
 from monitor.refit import refit

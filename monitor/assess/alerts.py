@@ -30,8 +30,9 @@ from datetime import date, datetime
 import numpy as np
 import pandas as pd
 
-from monitor.assess.findings import JOINT, evaluate
+from monitor.assess.findings import evaluate
 from monitor.assess.outbox import Job, deliver_jobs, delivery_claim, pending, queue
+from monitor.assess.stored import JOINT
 from monitor.assess.versions import write_versions
 from monitor.config import Config
 from monitor.errors import UserError
