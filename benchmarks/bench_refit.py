@@ -196,7 +196,11 @@ def _peak_rss_kib() -> float:
     return float(resource.getrusage(resource.RUSAGE_SELF).ru_maxrss)
 
 
-def _child_refit(cfg_path: str, full: bool, queue) -> None:
+def _child_refit(cfg_path: str, full: bool, queue, numba_cache: str | None = None) -> None:
+    import os
+
+    if numba_cache is not None:  # before numba is imported
+        os.environ["NUMBA_CACHE_DIR"] = numba_cache
     from monitor.config import load_config
     from monitor.refit.windows import refit
 
@@ -211,15 +215,31 @@ def _child_refit(cfg_path: str, full: bool, queue) -> None:
     )
 
 
-def timed_refit(cfg_path: Path, full: bool) -> dict:
-    """Run one refit in a fresh process; its wall time and its own peak RSS."""
+def timed_refit(cfg_path: Path, full: bool, numba_cache: Path | None = None) -> dict:
+    """Run one refit in a fresh process; its wall time and its own peak RSS.
+    ``numba_cache``: the compiled kernels' cache folder (an empty one: compile first)."""
     ctx = mp.get_context("spawn")
     queue = ctx.Queue()
-    proc = ctx.Process(target=_child_refit, args=(str(cfg_path), full, queue))
+    cache = None if numba_cache is None else str(numba_cache)
+    proc = ctx.Process(target=_child_refit, args=(str(cfg_path), full, queue, cache))
     proc.start()
     result = queue.get()
     proc.join()
     return result
+
+
+def whole_process_refit(cfg_path: Path, numba_cache: Path) -> float:
+    """Wall seconds of ``python -m monitor refit --full`` as a whole process (start-up,
+    imports, the refit, exit)."""
+    import os
+    import subprocess
+    import sys
+
+    env = {**os.environ, "CUEWATCH_CONFIG": str(cfg_path), "NUMBA_CACHE_DIR": str(numba_cache)}
+    t0 = time.perf_counter()
+    subprocess.run([sys.executable, "-m", "monitor", "refit", "--full", "--json"], env=env,
+                   check=True, capture_output=True)  # fmt: skip
+    return time.perf_counter() - t0
 
 
 def floor_query(db: Path) -> tuple[float, float]:
@@ -297,7 +317,8 @@ def naive_comparisons(db: Path, sample: int, lstsq_sample: int, seed: int = 1) -
     x = frame[cols].to_numpy()
     y = frame["judgment"].to_numpy()
     code_of = {k: i for i, k in enumerate(dm_keys)}
-    pick = rng.choice(len(keys), size=min(lstsq_sample, len(keys)), replace=False)
+    every = lstsq_sample <= 0 or lstsq_sample >= len(keys)
+    pick = np.arange(len(keys)) if every else rng.choice(len(keys), lstsq_sample, replace=False)
     max_rel = 0.0
     t0 = time.perf_counter()
     for w in pick:
@@ -326,6 +347,29 @@ def naive_comparisons(db: Path, sample: int, lstsq_sample: int, seed: int = 1) -
     }
 
 
+def naive_in_child(db: Path, sample: int, lstsq_sample: int) -> dict:
+    """``naive_comparisons`` in a fresh process whose BLAS runs one thread: for the small
+    matrices of one window that is the fastest (on a busy 2-core machine a threaded BLAS
+    made the same loop 15x slower), so the loop is measured at its best."""
+    import os
+    import subprocess
+    import sys
+
+    one = {k: "1" for k in ("OPENBLAS_NUM_THREADS", "OMP_NUM_THREADS", "MKL_NUM_THREADS")}
+    code = (
+        "import json, sys; from pathlib import Path; "
+        "from benchmarks.bench_refit import naive_comparisons; "
+        "print('\\nRESULT', json.dumps(naive_comparisons("
+        f"Path({str(db)!r}), {sample}, {lstsq_sample})))"
+    )
+    root = Path(__file__).resolve().parent.parent
+    proc = subprocess.run([sys.executable, "-c", code], env={**os.environ, **one}, cwd=root,
+                          check=True, capture_output=True, text=True)  # fmt: skip
+    # DuckDB's progress bar may share stdout: the result is the line marked RESULT.
+    line = next(x for x in proc.stdout.splitlines() if x.startswith("RESULT "))
+    return json.loads(line.removeprefix("RESULT "))
+
+
 def run(
     rows: int, makers: int, sample: int, lstsq_sample: int, workdir: Path, repeat: int = 2
 ) -> dict:
@@ -336,12 +380,18 @@ def run(
     t0 = time.perf_counter()
     cfg2 = build_store(big, rows, days2, makers)
     out["build_store_s"] = time.perf_counter() - t0
-    full = timed_refit(cfg2, full=True)
+    cache = workdir / "numba_cache"  # empty: the first refit compiles the kernels
+    out["full_refit_compiling"] = timed_refit(cfg2, full=True, numba_cache=cache)
+    runs = [timed_refit(cfg2, full=True, numba_cache=cache) for _ in range(max(repeat, 1))]
+    full = min(runs, key=lambda r: r["seconds"])
     out["full_refit"] = full
+    out["full_refit_whole_process_s"] = min(
+        whole_process_refit(cfg2, cache) for _ in range(max(repeat, 1))
+    )
     out["floor_query_s"], out["floor_query_cpu_s"] = floor_query(big / "store.duckdb")
     out["full_over_floor"] = full["seconds"] / out["floor_query_s"]
     out["full_over_floor_cpu"] = full["cpu_s"] / out["floor_query_cpu_s"]
-    naive = naive_comparisons(big / "store.duckdb", sample, lstsq_sample)
+    naive = naive_in_child(big / "store.duckdb", sample, lstsq_sample)
     out["naive"] = naive
     out["speedup_vs_statsmodels"] = naive["statsmodels_extrapolated_s"] / full["seconds"]
     out["speedup_vs_lstsq"] = naive["lstsq_extrapolated_s"] / full["seconds"]
@@ -386,7 +436,8 @@ def main(argv: list[str] | None = None) -> int:
     parser.add_argument("--rows", type=int, default=5_000_000)
     parser.add_argument("--makers", type=int, default=200)
     parser.add_argument("--sample", type=int, default=200, help="statsmodels windows timed")
-    parser.add_argument("--lstsq-sample", type=int, default=2000, help="lstsq windows timed")
+    parser.add_argument("--lstsq-sample", type=int, default=0,
+                        help="lstsq windows timed (0: every window, no extrapolation)")  # fmt: skip
     parser.add_argument("--label", default="", help="suffix of the output file name")
     parser.add_argument("--keep", type=Path, help="build the stores here and keep them")
     parser.add_argument("--repeat", type=int, default=2, help="nightly runs per case (best)")
@@ -409,22 +460,29 @@ def main(argv: list[str] | None = None) -> int:
 def summary_lines(r: dict) -> list[str]:
     """The figures the goals are about, one line each, with the goal beside them."""
     full = r["full_refit"]
+    naive = r["naive"]
     lines = [
-        f"(a) full refit: {full['seconds']:.2f} s wall, {full['cpu_s']:.2f} s CPU, "
-        f"{full['windows_fitted']:,} windows",
-        f"(b) vs statsmodels per window (extrapolated): {r['speedup_vs_statsmodels']:.0f}x "
-        "faster (goal >= 100x); vs presorted lstsq loop: "
-        f"{r['speedup_vs_lstsq']:.1f}x (goal >= 10x)",
+        f"(a) full refit: {full['seconds']:.2f} s in process (goal <= 1.5 s), "
+        f"{full['cpu_s']:.2f} s CPU, {full['windows_fitted']:,} windows; whole process "
+        f"{r['full_refit_whole_process_s']:.2f} s; first run, compiling the kernels: "
+        f"{r['full_refit_compiling']['seconds']:.2f} s",
+        f"(b) vs presorted lstsq loop over {naive['lstsq_sampled_windows']:,} of "
+        f"{naive['windows_decision_maker_scope']:,} windows ({naive['lstsq_extrapolated_s']:.2f} s"
+        f"{'' if naive['lstsq_sampled_windows'] == naive['windows_decision_maker_scope'] else ' extrapolated'}): "
+        f"{r['speedup_vs_lstsq']:.2f}x (goal >= 3x); vs statsmodels per window "
+        f"(extrapolated): {r['speedup_vs_statsmodels']:.0f}x",
         f"(c) vs the floor query ({r['floor_query_s']:.3f} s): {r['full_over_floor']:.1f}x wall, "
-        f"{r['full_over_floor_cpu']:.1f}x CPU (goal <= 5x)",
+        f"{r['full_over_floor_cpu']:.1f}x CPU",
     ]
     for label, n in r["nightly"].items():
         lines.append(
             f"(d) nightly {label}: {n['seconds']:.2f} s wall, {n['cpu_s']:.2f} s CPU "
             f"({n['new_rows']:,} new rows, {n['late_outcomes']:,} late outcomes, "
-            f"{n['windows_fitted']:,} windows; goal <= 0.2 s, flat in history)"
+            f"{n['windows_fitted']:,} windows; goal <= 0.3 s, flat in history)"
         )
-    lines.append(f"(e) peak RSS of the full refit: {full['peak_rss_mb']:.0f} MB (goal < 2048 MB)")
+    lines.append(
+        f"(e) peak RSS of the full refit: {full['peak_rss_mb']:.0f} MB (goal: not above 1.47 GB)"
+    )
     return lines
 
 
