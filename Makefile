@@ -4,20 +4,22 @@ VENV   := .venv
 BIN    := $(VENV)/bin
 STAMP  := $(VENV)/.installed
 
-# Programs from Debian that some tests need: chromium (browser tests) and the openssl CLI
-# (the TLS e-mail tests' certificate).  CI sets CI=true: there a missing one stops
+# Programs from Debian that some tests need: chromium (browser tests), the openssl CLI
+# (the TLS e-mail tests' certificate) and PostgreSQL's server programs (the ingest-from-
+# PostgreSQL tests start a throwaway server: tests/helpers/postgres_server.py).  CI sets CI=true: there a missing one stops
 # `make test` with an error; elsewhere it is a warning and those tests skip.
 CHROMIUM ?= /usr/bin/chromium
 OPENSSL  ?= openssl
+PG_INITDB ?= /usr/lib/postgresql/*/bin/initdb
 APT_GET  ?= apt-get
 STRICT   := $(filter true True TRUE 1,$(CI))
 
-.PHONY: demo test lint bench clean browser openssl
+.PHONY: demo test lint bench clean browser openssl postgres
 
 $(STAMP): pyproject.toml
 	$(PYTHON) -m venv $(VENV)
 	$(BIN)/pip install --quiet --upgrade pip
-	$(BIN)/pip install --quiet -e '.[test]'
+	$(BIN)/pip install --quiet -e '.[test,postgres]'
 	touch $(STAMP)
 
 demo: $(STAMP)
@@ -40,7 +42,10 @@ browser:
 openssl:
 	$(call system_need,the openssl CLI,command -v $(OPENSSL) >/dev/null 2>&1,openssl)
 
-test: $(STAMP) browser openssl
+postgres:
+	$(call system_need,PostgreSQL ($(PG_INITDB)),ls $(PG_INITDB) >/dev/null 2>&1,postgresql)
+
+test: $(STAMP) browser openssl postgres
 	$(BIN)/ruff check monitor dashboards synthetic_logs tests benchmarks
 	$(BIN)/python -m pytest -q
 

@@ -13,6 +13,7 @@ BENCHMARKS = [
     "benchmarks.bench_refit",
     "benchmarks.bench_dashboard",
     "benchmarks.bench_alerts",
+    "benchmarks.bench_postgres",
 ]
 
 

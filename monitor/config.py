@@ -115,6 +115,41 @@ def parse_file_mode(value: object) -> int:
     return mode
 
 
+class PostgresSourceConfig(_Strict):
+    """Where ``cuewatch ingest`` pulls one kind of record from a PostgreSQL database
+    (``[decisions.from_postgres]`` / ``[outcomes.from_postgres]``; monitor.ingest.postgres).
+    The rows must carry the columns the kind's section names, like a file would."""
+
+    # The name of the environment variable holding the libpq connection string (URL or
+    # key=value); the string itself, which may hold a password, never sits in the file.
+    url_env: str
+    # Exactly one of: a SELECT whose rows are the records, or a table (``schema.table``).
+    query: str | None = None
+    table: str | None = None
+    # A column of the rows that grows with every new record (an identity column, an
+    # insertion time): a pull takes the rows above the largest value already taken.
+    watermark: str
+
+    @field_validator("url_env")
+    @classmethod
+    def _env_name(cls, value: str) -> str:
+        if not re.fullmatch(r"[A-Za-z_][A-Za-z0-9_]*", value):
+            raise ValueError(f"url_env must be an environment variable name, not {value!r}")
+        return value
+
+    _watermark = field_validator("watermark")(_column_name)
+
+    @model_validator(mode="after")
+    def _one_source(self) -> PostgresSourceConfig:
+        if (self.query is None) == (self.table is None):
+            raise ValueError("give exactly one of query and table")
+        if self.query is not None and not self.query.strip().rstrip(";").strip():
+            raise ValueError("query is empty")
+        if self.table is not None and not re.fullmatch(r"[^.\s]+(\.[^.\s]+)?", self.table):
+            raise ValueError(f"table must be a name or schema.name, not {self.table!r}")
+        return self
+
+
 class DecisionsConfig(_Strict):
     landing: Path | None = None
     id: str
@@ -131,6 +166,7 @@ class DecisionsConfig(_Strict):
     change: str | None = None
     correct_value: str = "correct"
     retract_value: str = "retract"
+    from_postgres: PostgresSourceConfig | None = None
 
     _tz = field_validator("timezone")(_check_timezone)
     _columns = field_validator("id", "decided_at", "decision_maker", "team", "judgment", "change")(
@@ -156,6 +192,7 @@ class OutcomesConfig(_Strict):
     criterion_values: dict[str, float] = Field(default_factory=dict)
     criterion_range: tuple[float, float] | None = None
     timezone: str | None = None
+    from_postgres: PostgresSourceConfig | None = None
 
     _tz = field_validator("timezone")(lambda v: v if v is None else _check_timezone(v))
     _columns = field_validator("id", "observed_at", "criterion")(_column_name)

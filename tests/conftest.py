@@ -13,6 +13,9 @@ import pytest
 from helpers.cli import run_cli, text
 from helpers.configs import make_config
 
+# The session's PostgreSQL server fixture (`postgres_server`), started once when a test asks.
+pytest_plugins = ["helpers.postgres_server"]
+
 
 @pytest.fixture
 def config_path(tmp_path: Path) -> Path:

@@ -27,7 +27,7 @@ from helpers.configs import DECISION_COLUMNS, OUTCOME_COLUMNS, REPO, make_config
 from helpers.files import decision_row, outcome_row, write_csv, write_large_decisions_csv
 from helpers.store_rows import design_frame, query, read_store
 
-import monitor.ingest.batches as batches_module
+import monitor.ingest.store_batch as store_batch_module
 from monitor.config import load_config
 from monitor.ingest import ingest
 
@@ -371,7 +371,7 @@ def test_a_failure_inside_the_write_leaves_the_store_as_before(tmp_path, monkeyp
     def broken(*args, **kwargs):
         raise RuntimeError("injected failure after superseding")
 
-    monkeypatch.setattr(batches_module, "insert_sql", broken)
+    monkeypatch.setattr(store_batch_module, "insert_sql", broken)
     with pytest.raises(RuntimeError, match="injected"):
         ingest(load_config(cfg), [str(tmp_path / "fix.csv")], kind="decisions")
     assert _snapshot(cfg) == before

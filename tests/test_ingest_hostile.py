@@ -394,9 +394,9 @@ def test_past_the_bound_on_rounds_the_file_fails_naming_the_first_line(
     config_path, tmp_path, monkeypatch
 ):
     from monitor.config import load_config
-    from monitor.ingest import batches
+    from monitor.ingest import batches, store_batch
 
-    monkeypatch.setattr(batches, "MAX_QUOTE_PASSES", 2)
+    monkeypatch.setattr(store_batch, "MAX_QUOTE_PASSES", 2)
     lines = _csv_lines([decision_row(i) for i in range(1, 40)])
     for k in range(2, 40):
         lines[k] = lines[k].replace(",t", ',"t', 1)

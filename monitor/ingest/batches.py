@@ -1,14 +1,11 @@
-"""Ingest: validate decision and outcome files against the configuration and append
-them to the store, one transaction per file.
+"""Ingest: validate decision and outcome files (and PostgreSQL pulls) against the
+configuration and append them to the store, one transaction per file or pull.
 
-The hot path is set-based SQL inside DuckDB (its own CSV / JSON / Parquet readers,
-one staging table per file, CASE expressions for the checks), so large files stream
-with bounded memory and no Python loop runs per row.  Every input record ends up in
-exactly one place: ``decisions`` / ``outcomes`` (accepted), ``quarantine`` (with a
-reason code and a one-line message) or the batch's duplicate count (identical to
-what is already stored).  Which files to read is decided in monitor.ingest.files, the
-per-record checks are built in monitor.ingest.checks and the write statements in
-monitor.ingest.writes; this module runs them, one file at a time.
+Every input record ends up in exactly one place: ``decisions`` / ``outcomes``
+(accepted), ``quarantine`` (with a reason code and a one-line message) or the batch's
+duplicate count (identical to what is already stored).  Which files to read is decided
+in monitor.ingest.files, what a pull reads in monitor.ingest.postgres; one input becomes
+one batch in monitor.ingest.store_batch.  This module runs them in order and sums up.
 """
 
 from __future__ import annotations
@@ -17,53 +14,29 @@ import shutil
 import sys
 import tempfile
 from collections.abc import Callable, Iterable
-from dataclasses import asdict, dataclass, field
-from datetime import datetime, timedelta
+from dataclasses import asdict, dataclass, replace
+from datetime import datetime
 from pathlib import Path
 
 import duckdb
 
-from monitor import __version__
 from monitor.config import Config
-from monitor.ingest.checks import FileRejected, build_checks, reader_sql
-from monitor.ingest.corrections import classify_changes_sql, supersede
-from monitor.ingest.files import (
-    IngestUsageError,
-    detect_format,
-    file_sha256,
-    find_line,
-    mask_lines,
-    plan_files,
-    present_columns,
+from monitor.ingest.files import IngestUsageError, file_sha256, plan_files
+from monitor.ingest.postgres import (
+    RECORDED_FORMAT,
+    SourceFailed,
+    advance_watermark,
+    configured_sources,
+    connection_string,
+    describe_source,
+    spool_config,
+    spool_folder,
+    spool_new_rows,
+    stored_watermark,
 )
-from monitor.ingest.writes import (
-    classify_duplicates_sql,
-    insert_sql,
-    mark_dirty_sql,
-    quarantine_sql,
-)
+from monitor.ingest.store_batch import FileResult, ingest_spooled, record_failed
 from monitor.store.connection import Store
-from monitor.store.rules import clock_kind, sql_literal, utc_now
-from monitor.store.schema import drop_temp_tables, empty_temp_table, stage_temp_table
-
-
-@dataclass
-class FileResult:
-    path: str
-    kind: str
-    # "ingested" | "skipped" (already ingested) | "waiting" (a landing file still
-    # changing: not read, not recorded, taken by a later run) | "failed"
-    status: str
-    batch_id: int | None = None
-    rows_read: int = 0
-    accepted: int = 0
-    quarantined: int = 0
-    duplicates: int = 0
-    # Of ``accepted``: decisions corrected and retracted (monitor.ingest.corrections).
-    corrected: int = 0
-    retracted: int = 0
-    quarantine_reasons: dict[str, int] = field(default_factory=dict)
-    message: str = ""
+from monitor.store.rules import sql_literal, utc_now
 
 
 @dataclass
@@ -119,7 +92,7 @@ class IngestSummary:
 
     def describe(self) -> str:
         """The same account in a few lines for a person."""
-        ingested = sum(f.status == "ingested" for f in self.files)
+        ingested = sum(f.status == "ingested" and f.source == "file" for f in self.files)
         lines = [
             f"{ingested} file(s) ingested, {self.skipped_files} skipped (already ingested), "
             f"{len(self.failed_files)} failed.",
@@ -139,6 +112,10 @@ class IngestSummary:
         if self.quarantine_reasons:
             reasons = ", ".join(f"{k} {v}" for k, v in self.quarantine_reasons.items())
             lines.append(f"Quarantine reasons: {reasons}.")
+        for f in self.files:
+            if f.source == RECORDED_FORMAT and f.status != "failed":
+                took = f"{f.rows_read} new rows (batch {f.batch_id})" if f.batch_id else f.message
+                lines.append(f"PostgreSQL {f.kind}: {took}.")
         for f in self.failed_files:
             lines.append(f"FAILED {f.path}: {f.message}")
         return "\n".join(lines)
@@ -155,7 +132,7 @@ def ingest(
     now: datetime | None = None,
     on_file: Callable[[int, int, Path], None] | None = None,
 ) -> IngestSummary:
-    """Ingest files (or the landing folders) into the store.
+    """Ingest files (or the landing folders and the PostgreSQL sources) into the store.
 
     ``paths`` may contain '-' for JSON Lines on standard input (``kind`` required).
     ``now`` fixes the clock for the future-timestamp check (tests).  ``on_file``
@@ -170,7 +147,12 @@ def ingest(
         stdin_tmp = _spool_stdin()
         paths = [str(stdin_tmp) if p == "-" else p for p in paths]
     try:
-        plan = plan_files(config, paths, kind)
+        # Without paths, the PostgreSQL sources are pulled after the landing folders
+        # (decisions before outcomes); a missing connection string stops the run here.
+        pulls = [] if paths else list(configured_sources(config, kind))
+        for k in pulls:
+            connection_string(configured_sources(config, k)[k], k)
+        plan = plan_files(config, paths, kind, pulls=bool(pulls))
         if any(p.kind == "outcomes" for p in plan) and config.outcomes is None:
             raise IngestUsageError("outcome files given but the configuration has no [outcomes].")
         store = Store(config)
@@ -191,6 +173,8 @@ def ingest(
                     on_file(i, len(plan), path)
                 label = "-" if stdin_tmp is not None and path == stdin_tmp else str(path)
                 results.append(_ingest_one(con, config, path, k, now, label))
+            for k in pulls:
+                results.append(replace(_pull(con, config, k, now), source=RECORDED_FORMAT))
         return IngestSummary(results)
     finally:
         if stdin_tmp is not None:
@@ -214,7 +198,6 @@ def _ingest_one(
     label: str,
 ) -> FileResult:
     sha = file_sha256(path)
-    size = path.stat().st_size
     seen = con.execute(
         "SELECT batch_id FROM batches WHERE sha256 = ? AND kind = ? AND status = 'ingested' "
         "ORDER BY batch_id LIMIT 1",
@@ -224,272 +207,42 @@ def _ingest_one(
         return FileResult(
             label, kind, "skipped", batch_id=seen[0], message=f"already ingested as batch {seen[0]}"
         )
+    return ingest_spooled(con, config, path, kind, now, label, sha=sha)
+
+
+def _pull(con: duckdb.DuckDBPyConnection, config: Config, kind: str, now: datetime) -> FileResult:
+    """Take the new rows of ``kind``'s PostgreSQL source (monitor.ingest.postgres) as one
+    batch; the source's watermark advances in the batch's own transaction.  No new rows:
+    no batch, status ``up_to_date``."""
+    source = configured_sources(config, kind)[kind]
+    url = connection_string(source, kind)
+    described = describe_source(source, url)
+    after = stored_watermark(con, kind)
     started = utc_now()
+    folder = spool_folder(Path(config.store.path).parent)
     try:
-        fmt = detect_format(path)
-        checks = build_checks(config, kind)
-        staged = _stage(con, config, checks, path, fmt, now, label)
-        con.execute("BEGIN")
         try:
-            result = _write_batch(con, config, checks, staged, path, fmt, sha, size, started, label)
-            con.execute("COMMIT")
-        except BaseException:
-            con.execute("ROLLBACK")
-            raise
-        return result
-    except (FileRejected, duckdb.Error, UnicodeDecodeError) as exc:
-        message = str(exc).splitlines()[0] if str(exc) else type(exc).__name__
-        batch_id = con.execute("SELECT nextval('batch_ids')").fetchone()[0]
-        con.execute(
-            "INSERT INTO batches VALUES (?, ?, ?, ?, ?, ?, 0, 0, 0, 0, ?, ?, 'failed', ?, ?, ?, ?)",
-            [
-                batch_id,
-                kind,
-                label,
-                sha,
-                size,
-                path.suffix.lstrip(".") or "?",
-                started,
-                utc_now(),
-                message,
-                config.digest,
-                __version__,
-                clock_kind(),
-            ],
-        )
-        return FileResult(label, kind, "failed", batch_id=batch_id, message=message)
-    finally:
-        drop_temp_tables(con, "_raw", "_checked", "_rejects", "_reject_errors", "_reject_scans")
-
-
-def _stage(
-    con: duckdb.DuckDBPyConnection,
-    config: Config,
-    checks,
-    path: Path,
-    fmt: str,
-    now: datetime,
-    label: str,
-) -> int:
-    """Read and check one file into temporary tables (outside the write transaction,
-    so a record's ordinal is its rowid).  Returns the number of lines the reader
-    rejected outright."""
-    present = present_columns(con, config, path, fmt)
-    checks.require_columns(present, label)
-
-    # 1. Read, parse and check every record in one set-based pass, in file order
-    #    (the staged table's rowid is the record's ordinal).  A CSV line whose quote
-    #    is never closed swallows the lines after it into one rejected record: that
-    #    line is masked and the file read again (monitor.ingest.files.mask_lines).
-    masked: dict[int, tuple[int, str]] = {}  # reader's line -> (physical line, its text)
-    spans: list[tuple[int, int]] = []
-    scratch: Path | None = None
-    try:
-        source = path
-        for _ in range(MAX_QUOTE_PASSES):
-            _read_and_check(con, config, checks, source, fmt, now, present)
-            rejected_lines = _stage_rejects(con) if fmt != "parquet" else 0
-            runaway = _runaway_quotes(con) if fmt == "csv" and rejected_lines else []
-            if not runaway:
-                break
-            for line, record in runaway:
-                taken = {physical for physical, _ in masked.values()}
-                found = find_line(path, config.ingest.encoding, record, line, taken)
-                if found is None:
-                    raise FileRejected(
-                        f"{label}: line {line} opens a quoted value that is never closed"
-                    )
-                physical, start, length = found
-                masked[line] = (physical, _decoded(path, config.ingest.encoding, start, length))
-                spans.append((start, length))
-            scratch = scratch or Path(tempfile.mkdtemp(prefix="cuewatch-masked-"))
-            source = mask_lines(path, spans, _placeholder(config), scratch / "masked.csv")
-            drop_temp_tables(con, "_checked", "_rejects", "_reject_errors", "_reject_scans")
-        else:
-            first = min(masked)
-            raise FileRejected(
-                f"more than {MAX_QUOTE_PASSES - 1} rounds of quoted values that are "
-                f"never closed, the first on line {first}"
+            spool = spool_new_rows(url, source, after, folder / "pull.csv")
+        except SourceFailed as exc:
+            return record_failed(
+                con, config, kind, described, "", 0, RECORDED_FORMAT, started, str(exc)
             )
-    finally:
-        if scratch is not None:
-            shutil.rmtree(scratch, ignore_errors=True)
-    for line, (_, original) in masked.items():
-        con.execute(
-            "UPDATE _rejects SET error_type = 'UNCLOSED QUOTE', csv_line = ? WHERE line = ?",
-            [original, line],
-        )
-    checks.set_line_numbers(fmt, rejected_lines > 0)
-
-    # 2. Duplicates: identical to what is stored (or earlier in the file) -> counted;
-    #    a stored decision with different content -> quarantined, never overwritten.
-    changes = checks.change_column() is not None
-    con.execute(classify_changes_sql(checks) if changes else classify_duplicates_sql(checks))
-    return rejected_lines
-
-
-# Rounds of masking unclosed quotes before a file is given up (each round reads the file
-# again; a round masks every such line the reader reported, so one or two is usual).
-MAX_QUOTE_PASSES = 20
-
-
-def _read_and_check(
-    con: duckdb.DuckDBPyConnection,
-    config: Config,
-    checks,
-    source: Path,
-    fmt: str,
-    now: datetime,
-    present: list[str],
-) -> None:
-    """Stage ``source`` as ``_checked`` (and the reader's rejected lines as
-    ``_reject_errors``)."""
-    tz = checks.timezone
-    if tz != config.decisions.timezone:
-        con.execute(f"SET TimeZone = {sql_literal(tz)}")
-    try:
-        horizon = now + timedelta(hours=config.ingest.future_tolerance_hours)
-        reader = reader_sql(config, source, fmt, checks.columns, present)
-        if fmt == "jsonl":
-            # Materialise the JSON Lines split first: inlined, the optimiser may run a
-            # JSON function on a line that is not JSON before the CASE guards it.
-            stage_temp_table(con, "_raw", reader)
-            reader = "SELECT * FROM _raw"
-        stage_temp_table(
+        if spool.rows == 0:
+            return FileResult(described, kind, "up_to_date", message="no new rows")
+        return ingest_spooled(
             con,
-            "_checked",
-            checks.checked_sql(reader, fmt, horizon=horizon, earliest=config.ingest.earliest),
-        )
-    finally:
-        if tz != config.decisions.timezone:
-            con.execute(f"SET TimeZone = {sql_literal(config.decisions.timezone)}")
-        drop_temp_tables(con, "_raw")
-
-
-def _runaway_quotes(con: duckdb.DuckDBPyConnection) -> list[tuple[int, str]]:
-    """(line, text) of the rejected CSV records that run over several lines because a
-    quote was not closed (the reader reports an unquoted value at the place where it
-    finally gave up)."""
-    return con.execute(
-        "SELECT line, csv_line FROM _rejects WHERE error_type = 'UNQUOTED VALUE' "
-        "AND regexp_matches(trim(csv_line, chr(13) || chr(10)), '[\\r\\n]') ORDER BY line"
-    ).fetchall()
-
-
-def _placeholder(config: Config) -> bytes:
-    """A line the CSV reader rejects on its own (one field: no delimiter, no quote)."""
-    return b"^" if config.ingest.delimiter == "~" else b"~"
-
-
-def _decoded(path: Path, encoding: str, start: int, length: int) -> str:
-    with open(path, "rb") as fh:
-        fh.seek(start)
-        return fh.read(length).decode(encoding, "replace")
-
-
-def _write_batch(
-    con: duckdb.DuckDBPyConnection,
-    config: Config,
-    checks,
-    rejected_lines: int,
-    path: Path,
-    fmt: str,
-    sha: str,
-    size: int,
-    started: datetime,
-    label: str,
-) -> FileResult:
-    """Append one staged file to the store; the caller holds the transaction."""
-    kind = checks.kind
-    batch_id = con.execute("SELECT nextval('batch_ids')").fetchone()[0]
-    ingested_at = utc_now()
-    corrected, retracted = supersede(con, checks, batch_id, ingested_at)
-    accepted = con.execute(insert_sql(checks, batch_id, ingested_at)).fetchone()
-    accepted = (int(accepted[0]) if accepted else 0) + retracted
-    con.execute(quarantine_sql(checks, batch_id, ingested_at))
-    if rejected_lines:
-        encoding = "utf-8" if fmt == "jsonl" else config.ingest.encoding
-        con.execute(
-            "INSERT INTO quarantine SELECT ?, ?, line, NULL, 'malformed_record', "
-            "CASE error_type "
-            "WHEN 'INVALID ENCODING' THEN 'the line is not valid ' || ? || ' text' "
-            "WHEN 'UNCLOSED QUOTE' THEN 'a quoted value opened on this line is never closed' "
-            "WHEN 'LINE SIZE OVER MAXIMUM' THEN 'the line is too long: ' || error_message "
-            "ELSE 'the CSV reader could not split this line: ' || error_message END, "
-            "CAST(to_json(csv_line) AS VARCHAR), ? "
-            "FROM _rejects ORDER BY line",
-            [batch_id, kind, encoding, ingested_at],
-        )
-    con.execute(mark_dirty_sql(checks, ingested_at))
-
-    counts = con.execute(
-        "SELECT count(*), count(*) FILTER (WHERE is_duplicate) FROM _checked WHERE NOT is_blank"
-    ).fetchone()
-    rows_read = int(counts[0]) + rejected_lines
-    duplicates = int(counts[1])
-    reasons = dict(
-        con.execute(
-            "SELECT reason, count(*) FROM quarantine WHERE batch_id = ? GROUP BY reason",
-            [batch_id],
-        ).fetchall()
-    )
-    quarantined = int(sum(reasons.values()))
-    if accepted + quarantined + duplicates != rows_read:  # a bug, not a user error
-        raise RuntimeError(
-            f"ingest accounting mismatch for {label}: read {rows_read}, accepted {accepted}, "
-            f"quarantined {quarantined}, duplicates {duplicates}"
-        )
-    con.execute(
-        "INSERT INTO batches VALUES "
-        "(?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, 'ingested', NULL, ?, ?, ?)",
-        [
-            batch_id,
+            spool_config(config),
+            spool.path,
             kind,
-            label,
-            sha,
-            size,
-            fmt,
-            rows_read,
-            accepted,
-            quarantined,
-            duplicates,
-            started,
-            utc_now(),
-            config.digest,
-            __version__,
-            clock_kind(),
-        ],
-    )
-    return FileResult(
-        label,
-        kind,
-        "ingested",
-        batch_id=batch_id,
-        rows_read=rows_read,
-        accepted=accepted,
-        quarantined=quarantined,
-        duplicates=duplicates,
-        corrected=corrected,
-        retracted=retracted,
-        quarantine_reasons=dict(sorted(reasons.items())),
-    )
-
-
-def _stage_rejects(con: duckdb.DuckDBPyConnection) -> int:
-    """Stage the reader's rejected lines, one row a line, as ``_rejects`` (line,
-    error_type, error_message, csv_line); returns how many there are."""
-    try:
-        stage_temp_table(
-            con,
-            "_rejects",
-            "SELECT line, CAST(first(error_type) AS VARCHAR) AS error_type, "
-            "first(error_message) AS error_message, first(csv_line) AS csv_line "
-            "FROM _reject_errors GROUP BY line",
+            now,
+            spool.label(described, source, after),
+            sha=file_sha256(spool.path),
+            fmt="csv",
+            recorded_format=RECORDED_FORMAT,
+            started=started,
+            before_commit=lambda c, result: advance_watermark(
+                c, kind, described, spool.watermark, result.batch_id
+            ),
         )
-    except duckdb.CatalogException:
-        empty_temp_table(
-            con,
-            "_rejects",
-            "line BIGINT, error_type VARCHAR, error_message VARCHAR, csv_line VARCHAR",
-        )
-    return int(con.execute("SELECT count(*) FROM _rejects").fetchone()[0])
+    finally:
+        shutil.rmtree(folder, ignore_errors=True)

@@ -57,7 +57,12 @@ class PlannedFile:
 
 
 def plan_files(
-    config: Config, paths: Iterable[str], kind: str | None, *, clock: float | None = None
+    config: Config,
+    paths: Iterable[str],
+    kind: str | None,
+    *,
+    clock: float | None = None,
+    pulls: bool = False,
 ) -> list[PlannedFile]:
     """Resolve the command's paths to files and kinds in a stable order.
 
@@ -66,6 +71,7 @@ def plan_files(
     sorted by name, temporary names left out.  A file named on the command line is
     read as it is.  The kind comes from ``kind`` or, failing that, from which landing
     folder the file lies under.  ``clock`` (seconds since the epoch) defaults to now.
+    ``pulls``: the run also pulls from PostgreSQL, so having no landing folder is fine.
     """
     if kind is not None and kind not in KINDS:
         raise IngestUsageError(f"--kind must be one of {', '.join(KINDS)}, not '{kind}'.")
@@ -73,6 +79,8 @@ def plan_files(
     paths = list(paths)
     if not paths:
         if not landings:
+            if pulls:
+                return []
             raise IngestUsageError("no paths given and no landing folders configured.")
         now = time.time() if clock is None else clock
         settle = config.ingest.settle_seconds

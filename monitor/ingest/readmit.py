@@ -25,8 +25,8 @@ import pandas as pd
 
 from monitor.config import Config
 from monitor.errors import UserError
-from monitor.ingest.batches import _stage, _write_batch
 from monitor.ingest.checks import REASONS, build_checks
+from monitor.ingest.store_batch import _stage, _write_batch
 from monitor.store.connection import Store
 from monitor.store.rules import sql_literal, utc_now
 from monitor.store.schema import drop_temp_tables

@@ -348,6 +348,24 @@ MIGRATIONS: list[tuple[int, str, list[str]]] = [
             "ALTER TABLE batches ADD COLUMN clock VARCHAR DEFAULT 'system'",
         ],
     ),
+    (
+        10,
+        "source_watermarks: how far ingest has read each PostgreSQL source",
+        [
+            # One row per kind pulled from PostgreSQL ([decisions.from_postgres] /
+            # [outcomes.from_postgres]): the largest watermark value taken, as PostgreSQL
+            # writes it as text (compared back as a literal of the column's own type), and
+            # the batch that took it.  Written in the transaction that stores the batch's
+            # rows, so a pull is in the store with its watermark or not at all.
+            """CREATE TABLE source_watermarks (
+                kind VARCHAR PRIMARY KEY,
+                source VARCHAR NOT NULL,
+                watermark VARCHAR NOT NULL,
+                batch_id BIGINT NOT NULL,
+                advanced_at TIMESTAMPTZ NOT NULL
+            )""",
+        ],
+    ),
 ]
 
 
