@@ -61,7 +61,7 @@ def fill(url: str, first: int, n: int) -> float:
                    CASE WHEN i % 5 = 0 THEN 'Y' ELSE 'N' END, i % 60, i % 25,
                    (ARRAY['18-24', '25-39', '40-59', '60+'])[1 + i % 4],
                    CASE WHEN i % 2 = 0 THEN 'female' ELSE 'male' END
-            FROM generate_series({first}, {first + n - 1}) AS i"""
+            FROM generate_series({first}::bigint, {first + n - 1}) AS i"""
         )
         pg.execute("ANALYZE claim_scores")
     return time.perf_counter() - t0
