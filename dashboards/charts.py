@@ -8,18 +8,8 @@ from __future__ import annotations
 import altair as alt
 import pandas as pd
 
+from monitor.palette import ACHIEVEMENT, COLOURS, CONSISTENCY, LENS_RANGE
 from monitor.stats.design import cue_of
-
-# Our palette: teal for the person, warm grey for the team, burnt orange for forbidden
-# cues, pale amber for alert periods, brick red for a flag.
-COLOURS = {
-    "person": "#1f6f78",
-    "team": "#8a817c",
-    "forbidden": "#c2410c",
-    "permitted": "#1f6f78",
-    "alert": "#f2c14e",
-    "flag": "#b42318",
-}
 
 STATUS_DOMAIN = ["permitted cue", "forbidden by policy", "team median"]
 STATUS_RANGE = [COLOURS["permitted"], COLOURS["forbidden"], COLOURS["team"]]
@@ -31,7 +21,6 @@ LENS_ORDER = [
     "unmodelled agreement C",
     "model of the judge G·R_e",
 ]
-LENS_RANGE = ["#1f6f78", "#6a4c93", "#8a817c", "#2a9d8f", "#bc8a5f", "#c2410c"]
 
 
 def _status_scale() -> alt.Scale:
@@ -53,7 +42,7 @@ def overview_chart(rows: pd.DataFrame) -> alt.Chart:
     flagged = people.loc[people["open_alerts"] > 0, "decision_maker"].astype(str).tolist()
     is_flagged = f"indexof({flagged!r}, datum.value) >= 0"
     axis = alt.Axis(
-        labelColor=alt.ExprRef(f"{is_flagged} ? '{COLOURS['flag']}' : '#1d2b2f'"),
+        labelColor=alt.ExprRef(f"{is_flagged} ? '{COLOURS['flag']}' : '{COLOURS['ink']}'"),
         labelFontWeight=alt.ExprRef(f"{is_flagged} ? 'bold' : 'normal'"),
         labelOverlap=False,
     )
@@ -67,7 +56,7 @@ def overview_chart(rows: pd.DataFrame) -> alt.Chart:
                 "figure:N",
                 scale=alt.Scale(
                     domain=["consistency R_s", "achievement r_a"],
-                    range=[COLOURS["person"], "#6a4c93"],
+                    range=[CONSISTENCY, ACHIEVEMENT],
                 ),  # fmt: skip
                 legend=alt.Legend(title=None, orient="top"),
             ),
@@ -115,7 +104,11 @@ def weight_panels(weights: pd.DataFrame, spans: pd.DataFrame, columns: int = 3) 
             .mark_line(strokeDash=[5, 3])
             .encode(y="team_median:Q", color=alt.Color("status:N", scale=_status_scale()))
         )
-        zero = alt.Chart(pd.DataFrame({"y": [0.0]})).mark_rule(color="#c9c9c9").encode(y="y:Q")
+        zero = (
+            alt.Chart(pd.DataFrame({"y": [0.0]}))
+            .mark_rule(color=COLOURS["zero_line"])
+            .encode(y="y:Q")
+        )
         layers = [zero, band, median, line]
         base_name = cue_of(cue)
         cue_spans = spans[spans["cue"].isin([cue, base_name])] if len(spans) else spans
@@ -193,7 +186,7 @@ def forbidden_chart(rows: pd.DataFrame) -> alt.Chart:
         "part:N",
         scale=alt.Scale(
             domain=["disparity", "direct", "via proxies"],
-            range=["#8a817c", COLOURS["forbidden"], "#6a4c93"],
+            range=[COLOURS["team"], COLOURS["forbidden"], COLOURS["second"]],
         ),  # fmt: skip
         legend=alt.Legend(title=None, orient="top"),
     )
@@ -212,7 +205,7 @@ def forbidden_chart(rows: pd.DataFrame) -> alt.Chart:
             "n",
         ],  # fmt: skip
     )
-    zero = alt.Chart().mark_rule(color="#c9c9c9").encode(x=alt.datum(0))
+    zero = alt.Chart().mark_rule(color=COLOURS["zero_line"]).encode(x=alt.datum(0))
     return (
         alt.layer(zero, rules, dots, data=df)
         .properties(width=170, height=60)

@@ -7,6 +7,7 @@ import streamlit as st
 
 from dashboards import ui
 from monitor.dashboard.health import data_health
+from monitor.palette import COLOURS
 
 st.title("Data health")
 health = ui.load(data_health)
@@ -30,11 +31,11 @@ st.subheader("Outcome coverage and lag by decision month")
 cov = health.coverage
 if len(cov):
     base = alt.Chart(cov).encode(x=alt.X("yearmonth(month):O", title=None))
-    share = base.mark_bar(color="#1f6f78", opacity=0.85).encode(
+    share = base.mark_bar(color=COLOURS["person"], opacity=0.85).encode(
         y=alt.Y("share_linked:Q", title="share with an outcome", axis=alt.Axis(format="%")),
         tooltip=["month:T", "decisions", "linked", alt.Tooltip("share_linked:Q", format=".1%")],
     )
-    lag = base.mark_line(color="#c2410c", point=True).encode(
+    lag = base.mark_line(color=COLOURS["forbidden"], point=True).encode(
         y=alt.Y("median_lag_days:Q", title="median lag (days)"),
         tooltip=[
             "month:T",
@@ -54,7 +55,7 @@ if health.quarantine.empty:
 else:
     st.altair_chart(
         alt.Chart(health.quarantine)
-        .mark_bar(color="#8a817c")
+        .mark_bar(color=COLOURS["team"])
         .encode(
             y=alt.Y("reason:N", sort="-x", title=None, axis=alt.Axis(labelLimit=260)),
             x=alt.X("rows:Q", axis=alt.Axis(format="d", tickMinStep=1)),

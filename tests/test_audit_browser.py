@@ -96,3 +96,36 @@ def test_report_renders_offline_in_headless_chromium(report, tmp_path):
         finally:
             context.close()
     assert requests == []
+
+
+def test_report_prints_every_row_it_holds(report, tmp_path):
+    """Printed (print media, an A4 page's width of about 720 CSS px inside its margins),
+    no table sits in a scroll box: each box is as tall and as wide as its table, and no
+    table is wider than the page."""
+    sync_api = pytest.importorskip("playwright.sync_api")
+    with sync_api.sync_playwright() as pw:
+        browser = pw.chromium.launch(
+            executable_path=str(CHROMIUM), headless=True, args=["--no-sandbox", "--disable-gpu"]
+        )
+        try:
+            page = browser.new_page(viewport={"width": 720, "height": 1000})
+            page.goto(report.as_uri(), wait_until="load")
+            page.emulate_media(media="print")
+            boxes = page.eval_on_selector_all(
+                "div.wrap",
+                "els => els.map(e => ({id: e.previousElementSibling.id, "
+                "sh: e.scrollHeight, ch: e.clientHeight, sw: e.scrollWidth, cw: e.clientWidth, "
+                "rows: e.querySelectorAll('tbody tr').length, "
+                "right: e.querySelector('table').getBoundingClientRect().right}))",
+            )
+            assert len(boxes) >= 5
+            assert max(b["rows"] for b in boxes) > 30  # a table longer than one screen
+            for b in boxes:
+                assert b["sh"] <= b["ch"] + 1, b  # nothing hidden below the box
+                assert b["sw"] <= b["cw"] + 1, b  # nothing hidden to its right
+                assert b["right"] <= 720 + 1, b
+            pdf = tmp_path / "report.pdf"
+            page.pdf(path=str(pdf), format="A4")
+            assert pdf.stat().st_size > 10_000
+        finally:
+            browser.close()

@@ -45,11 +45,19 @@ def coverage_table(rows, quarantine: pd.DataFrame) -> Table:
         out += [(name, scope, key, None, v) for name, v in figures]
     for kind, reason, n in quarantine.itertuples(index=False):
         out.append(("quarantined_rows", "all", "all", f"{kind}: {reason}", n))
-    cols = spec("measure:str scope:str decision_maker:str detail:str value")
+    # Counts, a share and lags in one column: ``number``, so a count is written as one.
+    cols = spec("measure:str scope:str decision_maker:str detail:str value:number")
     return make_table("coverage", "Rows, outcomes and quarantine behind the figures", cols, out)
 
 
 # --- alerts as of T ---------------------------------------------------------------------------
+
+
+def _text(value) -> str | None:
+    """A text cell of a history frame, None for SQL NULL (which pandas may read as NaN)."""
+    if value is None or (not isinstance(value, str) and pd.isna(value)):
+        return None
+    return str(value)
 
 
 def _ts(value) -> str | None:
@@ -106,12 +114,13 @@ def alerts_table(alerts: pd.DataFrame, history: pd.DataFrame, span, tz: str) -> 
                     [
                         {
                             "changed_at": _ts(r.changed_at),
-                            "from": r.from_state,
-                            "to": r.to_state,
-                            "by": r.changed_by,
+                            "from": _text(r.from_state),
+                            "to": _text(r.to_state),
+                            "by": _text(r.changed_by),
                         }
                         for r in h.itertuples(index=False)
-                    ]
+                    ],
+                    allow_nan=False,
                 ),
             )
         )
@@ -222,8 +231,8 @@ def restatement_table(before, after) -> Table:
                     )
                 )
     cols = spec(
-        "table:str scope:str decision_maker:str cue:str figure:str value_before value_after "
-        "change newly_linked:int corrected_outcomes:int late_decisions:int "
+        "table:str scope:str decision_maker:str cue:str figure:str value_before:number "
+        "value_after:number change:number newly_linked:int corrected_outcomes:int late_decisions:int "
         "corrected_decisions:int retracted_decisions:int why:str"
     )
     title = f"Restatements between {before.as_of} and {after.as_of}"

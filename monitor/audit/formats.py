@@ -4,7 +4,10 @@ A ``Table`` is a name, typed columns and rows of plain Python values.  Every flo
 rounded to ``SIGNIFICANT`` significant digits before it is stored in a table, so two
 exports of the same rows are byte-identical in CSV and Parquet even if a summation
 order changed the last binary digits.  Missing values are ``None`` everywhere (empty in
-CSV, null in Parquet, an empty cell in XLSX).
+CSV, null in Parquet, an empty cell in XLSX).  A column of kind ``number`` mixes counts
+and measures (coverage's ``value``): a float in Parquet, and a whole number is written
+as one (``739``, not ``739.0``) in CSV, XLSX and HTML.  A p- or q-value below
+``P_FLOOR`` (an underflow to 0 included) is written as ``P_FLOOR``, read "at most".
 
 Text cells of the spreadsheet formats (CSV and XLSX) go through ``neutralise``: a value a
 spreadsheet could take for a formula gets a leading apostrophe.  Parquet and HTML keep
@@ -22,7 +25,15 @@ from pathlib import Path
 # 12 of float64's ~15.9 significant digits: noise from summation order lives in the last
 # two or three, so rounding here removes it without losing anything an auditor can use.
 SIGNIFICANT = 12
-KINDS = ("str", "int", "float", "bool", "date")
+KINDS = ("str", "int", "float", "number", "bool", "date")
+# Whole numbers of a ``number`` column up to this size are written without a decimal
+# point (2**53: beyond it a float no longer holds every integer).
+_WHOLE_LIMIT = 2**53
+
+# The smallest p- or q-value written: a t or normal tail below it is at or past the end
+# of double precision (the smallest normal double is ~2.2e-308), so the computed value,
+# 0 included, says only "this small or smaller".  The methodology says so.
+P_FLOOR = 1e-300
 
 # First characters that make a spreadsheet read a cell as a formula (OWASP, "CSV
 # Injection": =, +, -, @, tab, carriage return), plus the apostrophe itself, so that
@@ -43,10 +54,25 @@ def clean_float(value: object) -> float | None:
     return 0.0 if r == 0 else r  # no "-0.0" in the files
 
 
-def _clean(value: object, kind: str) -> object:
+def is_probability(name: str) -> bool:
+    """Whether a column holds p- or q-values (``p_value``, ``q_value``, ``indirect_p``,
+    ``joint_p_value``, ``indirect_q_value``): floored at P_FLOOR, shown in scientific
+    notation in the workbook."""
+    return name in ("p_value", "q_value") or name.endswith(("_p", "_p_value", "_q_value"))
+
+
+def clean_probability(value: object) -> float | None:
+    """A p- or q-value for a file: ``clean_float``, and at least P_FLOOR."""
+    v = clean_float(value)
+    return v if v is None or v >= P_FLOOR else P_FLOOR
+
+
+def _clean(value: object, kind: str, name: str = "") -> object:
     if value is None:
         return None
-    if kind == "float":
+    if kind == "float" and is_probability(name):
+        return clean_probability(value)
+    if kind in ("float", "number"):
         return clean_float(value)
     if isinstance(value, float) and not math.isfinite(value):
         return None
@@ -93,7 +119,7 @@ def make_table(
     for row in rows:
         if len(row) != len(kinds):
             raise ValueError(f"table {name}: row has {len(row)} values for {len(kinds)} columns")
-        out.append(tuple(_clean(v, k) for v, k in zip(row, kinds, strict=True)))
+        out.append(tuple(_clean(v, k, c) for v, (c, k) in zip(row, columns, strict=True)))
     return Table(name, title, tuple((c, k) for c, k in columns), tuple(out))
 
 
@@ -113,7 +139,16 @@ def restore(cell: str) -> str:
     return cell[len(ESCAPE) :] if cell.startswith(ESCAPE) else cell
 
 
+def whole(value: object) -> int | None:
+    """``value`` as an int when it is a whole float within _WHOLE_LIMIT, else None."""
+    if isinstance(value, float) and value.is_integer() and abs(value) <= _WHOLE_LIMIT:
+        return int(value)
+    return None
+
+
 def _cell_text(value: object, kind: str) -> str:
+    if kind == "number" and whole(value) is not None:
+        return str(whole(value))
     text = csv_text(value)
     return neutralise(text) if kind == "str" and value is not None else text
 
@@ -170,7 +205,7 @@ def write_parquet(table: Table, path: Path) -> Path:
     import pyarrow as pa
     import pyarrow.parquet as pq
 
-    arrow = {"str": pa.string(), "int": pa.int64(), "float": pa.float64()}
+    arrow = {"str": pa.string(), "int": pa.int64(), "float": pa.float64(), "number": pa.float64()}
     arrow |= {"bool": pa.bool_(), "date": pa.date32()}
     schema = pa.schema([(c, arrow[k]) for c, k in table.columns])
     cols = list(zip(*table.rows, strict=True)) if table.rows else [()] * len(table.columns)
@@ -181,7 +216,8 @@ def write_parquet(table: Table, path: Path) -> Path:
 
 # --- XLSX -----------------------------------------------------------------------------
 
-_NUMBER_FORMATS = {"int": "#,##0", "float": "0.0000", "date": "yyyy-mm-dd"}
+# ``number`` columns: General, so a count shows as 739 and a share as 0.7846.
+_NUMBER_FORMATS = {"int": "#,##0", "float": "0.0000", "number": "General", "date": "yyyy-mm-dd"}
 _MAX_WIDTH = 60
 
 
@@ -202,6 +238,8 @@ def _put(sheet, row: int, column: int, value: object, kind: str):
     if kind == "str" and value is not None:
         cell.value = neutralise(str(value))
         cell.data_type = "s"
+    elif kind == "number" and whole(value) is not None:
+        cell.value = whole(value)
     else:
         cell.value = value
     return cell
@@ -245,7 +283,7 @@ def write_workbook(
         for j, (name, kind) in enumerate(table.columns, start=1):
             letter = get_column_letter(j)
             # p- and q-values span many decades: scientific, so 1e-9 does not show as 0.
-            small = kind == "float" and (name.startswith(("p_", "q_")) or name.endswith("_p"))
+            small = kind == "float" and is_probability(name)
             fmt = "0.00E+00" if small else _NUMBER_FORMATS.get(kind)
             if fmt:
                 for (cell,) in sh.iter_rows(min_row=2, min_col=j, max_col=j):

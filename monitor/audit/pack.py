@@ -16,6 +16,7 @@ import calendar
 import hashlib
 import json
 import re
+import shutil
 from dataclasses import dataclass
 from datetime import UTC, date, datetime, timedelta
 from pathlib import Path
@@ -27,6 +28,7 @@ import pandas as pd
 from monitor import __version__
 from monitor.audit.asof import alerts_table, coverage_table, history_table, restatement_table
 from monitor.audit.figures import quarter_tables
+from monitor.audit.folder import earlier_pack, publish, staging_folder
 from monitor.audit.formats import Table, write_csv, write_parquet, write_workbook
 from monitor.audit.report import methodology_text, write_html
 from monitor.audit.verdicts import fetch_window_findings, window_findings_table
@@ -96,6 +98,29 @@ def parse_as_of(text: str | None, timezone: str) -> tuple[datetime, bool]:
 
 def iso(dt: datetime) -> str:
     return dt.astimezone(UTC).isoformat()
+
+
+def quarter_end(last: date, timezone: str) -> datetime:
+    """The instant the quarter whose last day is ``last`` is over: 00:00 of the next
+    day in the decisions' time zone (the zone of the bucket days)."""
+    if last >= date.max:  # 9999Q4 never ends
+        return datetime.max.replace(tzinfo=UTC)
+    return datetime.combine(last + timedelta(days=1), datetime.min.time(), ZoneInfo(timezone))
+
+
+def unfinished_warning(
+    label: str, last: date, as_of: datetime, timezone: str, which: str = "the as-of time"
+) -> str | None:
+    """The warning for a pack taken (``which``: at ``as_of``) before its quarter was
+    over; None when it was over."""
+    end = quarter_end(last, timezone)
+    if as_of >= end:
+        return None
+    return (
+        f"{label} was not over at {which} ({iso(as_of)[:19]} UTC): it runs to "
+        f"{last.isoformat()} (ends {iso(end)[:19]} UTC), so these tables hold only the "
+        "decisions made and ingested by then, and an export as of a later time will differ."
+    )
 
 
 # --- rows -----------------------------------------------------------------------------
@@ -337,6 +362,11 @@ def export(
         (t1, _), (t2, _) = parse_as_of(compare[0], tz), parse_as_of(compare[1], tz)
         if t2 < t1:
             raise ExportUsageError("--compare-as-of T1 T2 needs T1 at or before T2.")
+        early = unfinished_warning(label, last, t2, tz, "either as-of time") or (
+            unfinished_warning(label, last, t1, tz, "the first as-of time")
+        )
+        if early:
+            warnings.append(early)
         before, after = snapshot(config, label, iso(t1)), snapshot(config, label, iso(t2))
         tables = [restatement_table(before, after)]
         as_of_text, defaulted = iso(t2), False
@@ -344,6 +374,9 @@ def export(
     else:
         t, defaulted = parse_as_of(as_of, tz)
         as_of_text = iso(t)
+        early = unfinished_warning(label, last, t, tz)
+        if early:
+            warnings.append(early)
         snap = snapshot(config, label, as_of_text)
         tables, fp = list(snap.tables), snap.fingerprint
         for maker in include_rows or []:
@@ -354,13 +387,17 @@ def export(
                 f"{', '.join(include_rows)}: personal data, handle under your data-protection rules."
             )
     out_dir = Path(out_dir)
-    out_dir.mkdir(parents=True, exist_ok=True)
+    # A folder that holds other files is refused before anything is written; errors
+    # about the quarter's data (nothing to export) come first, they say more.
+    earlier_pack(out_dir)
+    complete = datetime.fromisoformat(as_of_text) >= quarter_end(last, tz)
     manifest = {
         "quarter": label,
         "quarter_start": first.isoformat(),
         "quarter_end": last.isoformat(),
         "as_of": as_of_text,
         "as_of_defaulted_to_now": defaulted,
+        "quarter_over_at_as_of": complete,
         "compare_as_of": [iso(parse_as_of(c, tz)[0]) for c in compare] if compare else None,
         "config_digest": config.digest,
         "config_path": str(config.source) if config.source else None,
@@ -377,8 +414,16 @@ def export(
         "methodology": "methodology.txt",
         "tables": {},
     }
-    method = methodology_text(config, label, as_of_text, compare=compare is not None)
-    files = _write_all(tables, fmts, out_dir, label, manifest, method, created)
+    method = methodology_text(
+        config, label, as_of_text, compare=compare is not None, warnings=warnings
+    )
+    stage = staging_folder(out_dir)
+    try:
+        files = _write_all(tables, fmts, stage, label, manifest, method, created)
+    except BaseException:
+        shutil.rmtree(stage, ignore_errors=True)
+        raise
+    files = publish(stage, files, out_dir)
     summary = _summary(label, as_of_text, tables, out_dir, compare is not None, warnings)
     return {
         "summary": summary,
@@ -419,7 +464,7 @@ def _write_all(tables, fmts, out_dir: Path, label, manifest, method, created) ->
         files.append(write_workbook(tables, out_dir / f"audit_{label}.xlsx", cover, created))
         manifest["workbook"] = files[-1].name
     if "html" in fmts:
-        files.append(write_html(tables, out_dir / f"audit_{label}.html", manifest, method))
+        files.append(write_html(tables, out_dir / f"audit_{label}.html", manifest, method, fmts))
         manifest["report"] = files[-1].name
     path = out_dir / "manifest.json"
     path.write_text(json.dumps(manifest, indent=2, sort_keys=True) + "\n", encoding="utf-8")

@@ -8,27 +8,45 @@ from __future__ import annotations
 
 import html
 import json
-import math
 import textwrap
 from collections.abc import Sequence
 from importlib import resources
 from pathlib import Path
 
-from monitor.audit.formats import ESCAPE, FORMULA_TRIGGERS, Table, csv_text
+from monitor.audit.charts import key_charts
+from monitor.audit.formats import (
+    ESCAPE,
+    FORMULA_TRIGGERS,
+    P_FLOOR,
+    Table,
+    csv_text,
+    is_probability,
+    whole,
+)
 from monitor.cautions import CAUTION, caution_lines
 from monitor.config import Config
 
-MAX_HTML_ROWS = 400  # per table; the CSV/XLSX files carry every row
+MAX_HTML_ROWS = 400  # per table; the note under a longer one says where the rest are
 
 
-def methodology_text(config: Config, quarter: str, as_of: str, *, compare: bool = False) -> str:
+def methodology_text(
+    config: Config,
+    quarter: str,
+    as_of: str,
+    *,
+    compare: bool = False,
+    warnings: Sequence[str] = (),
+) -> str:
     """Plain-text methodology and cautions for one pack (the figures' meaning, their
-    computation, their limits and the legal caution), with this configuration's values."""
+    computation, their limits and the legal caution), with this configuration's values;
+    ``warnings`` (the pack's, as in the manifest) come first."""
     w = config.windows
     binary = "yes (0/1)" if config.judgment_is_binary else "no"
-    parts = [
-        f"cuewatch audit pack - quarter {quarter}, as of {as_of}",
-        "",
+    parts = [f"cuewatch audit pack - quarter {quarter}, as of {as_of}", ""]
+    for text in warnings:
+        parts += textwrap.wrap(f"WARNING: {text}", 84, subsequent_indent="  ")
+        parts.append("")
+    parts += [
         "WHAT THE DATA ARE",
         "Each row is one recorded judgment (the 'judgment' Ys) with the case facts the",
         "decision-maker saw (the 'cues' x), and, where one has arrived, the later outcome",
@@ -90,7 +108,12 @@ def methodology_text(config: Config, quarter: str, as_of: str, *, compare: bool 
         "  lag (days from decision to outcome), and rows quarantined in the batches used.",
         "- alerts: alerts active at any time in the quarter (by the data window or by the",
         "  clock), in the state their recorded history gives them at the as-of time.",
-        "- Numbers are rounded to 12 significant digits in every file.",
+        "- Numbers are rounded to 12 significant digits in every file. Counts are written",
+        "  as whole numbers (coverage's value column mixes counts, a share and lags in days:",
+        "  a float column in Parquet, whole numbers written without a decimal point).",
+        f"- A p- or q-value is never written as 0: one below {P_FLOOR:g} (double precision",
+        f"  ends near 2.2e-308, where a tail probability underflows) is written as {P_FLOOR:g}",
+        f"  and means '{P_FLOOR:g} or smaller'; the HTML report shows it as <{P_FLOOR:g}.",
         *_formula_note(),
     ]
     if compare:
@@ -239,118 +262,6 @@ def operating_characteristics_lines(config: Config, data: dict | None = None) ->
     return lines
 
 
-# --- charts ------------------------------------------------------------------------------------
-
-
-def _esc(value: object) -> str:
-    return html.escape(csv_text(value), quote=True)
-
-
-def bar_chart(
-    title: str,
-    labels: Sequence[str],
-    series: Sequence[tuple[str, str, Sequence[float | None]]],
-    *,
-    lo: float,
-    hi: float,
-    marks: Sequence[float] = (),
-) -> str:
-    """A horizontal grouped bar chart as an inline SVG string.
-
-    series: (name, colour, values) with one value per label (None = not estimated, drawn
-    as a grey 'n/a'); values are clipped to [lo, hi]; ``marks`` draws dashed reference
-    lines (e.g. the policy tolerance).
-    """
-    # 11px labels are about 6.5px a character wide: size the margin to the longest.
-    left = max(120, int(6.5 * max((len(x) for x in labels), default=0)) + 16)
-    bar, gap, width, top = 12, 8, 420, 34
-    per = bar * len(series) + gap
-    height = top + per * max(len(labels), 1) + 30
-    sx = lambda v: left + (min(max(v, lo), hi) - lo) / (hi - lo) * width  # noqa: E731
-    out = [
-        f'<svg role="img" width="{left + width + 30}" '
-        f'height="{height}" viewBox="0 0 {left + width + 30} {height}" class="chart">',
-        f"<title>{html.escape(title)}</title>",
-        f'<text x="4" y="16" class="ct">{html.escape(title)}</text>',
-    ]
-    for i, (name, colour, _) in enumerate(series):
-        out.append(
-            f'<rect x="{left + 130 * i}" y="22" width="10" height="8" fill="{colour}"/>'
-            f'<text x="{left + 14 + 130 * i}" y="30" class="lg">{html.escape(name)}</text>'
-        )
-    zero = sx(0.0) if lo <= 0 <= hi else sx(lo)
-    for r, label in enumerate(labels):
-        y0 = top + r * per
-        out.append(
-            f'<text x="{left - 6}" y="{y0 + per / 2}" text-anchor="end" class="lb">'
-            f"{html.escape(label)}</text>"
-        )
-        for s, (_, colour, values) in enumerate(series):
-            v = values[r]
-            y = y0 + s * bar
-            if v is None or not math.isfinite(v):
-                out.append(f'<text x="{zero + 3}" y="{y + bar - 2}" class="na">n/a</text>')
-                continue
-            x0, x1 = sorted((zero, sx(v)))
-            out.append(
-                f'<rect x="{x0:.1f}" y="{y}" width="{max(x1 - x0, 0.5):.1f}" '
-                f'height="{bar - 2}" fill="{colour}"><title>{html.escape(label)}: '
-                f"{v:.3f}</title></rect>"
-            )
-    axis_y = top + per * max(len(labels), 1)
-    out.append(f'<line x1="{left}" y1="{axis_y}" x2="{left + width}" y2="{axis_y}" class="ax"/>')
-    for t in sorted({lo, (lo + hi) / 2, hi, *([0.0] if lo < 0 < hi else [])}):
-        out.append(
-            f'<text x="{sx(t):.1f}" y="{axis_y + 14}" text-anchor="middle" class="lg">{t:g}</text>'
-        )
-    for m in marks:
-        if lo <= m <= hi:
-            out.append(
-                f'<line x1="{sx(m):.1f}" y1="{top - 4}" x2="{sx(m):.1f}" y2="{axis_y}" class="mk"/>'
-            )
-    out.append("</svg>")
-    return "".join(out)
-
-
-def _charts(tables: dict[str, Table], tolerance: float) -> list[str]:
-    charts = []
-    dm = tables.get("decision_makers")
-    if dm is not None:
-        recs = [r for r in dm.records() if r["scope"] != "team"]
-        charts.append(
-            bar_chart(
-                "Consistency R_s and achievement r_a, quarter fit",
-                [f"{r['decision_maker']} (n={r['n_decisions']})" for r in recs],
-                [
-                    ("R_s consistency", "#3b6ea5", [r["R_s"] for r in recs]),
-                    ("r_a achievement", "#d08c2b", [r["r_a"] for r in recs]),
-                ],
-                lo=-0.2,
-                hi=1.0,
-            )
-        )
-    fc = tables.get("forbidden_cues")
-    if fc is not None and fc.rows:
-        recs = fc.records()
-        span = max(
-            [tolerance * 2] + [abs(r["std_weight"]) for r in recs if r["std_weight"] is not None]
-        )
-        charts.append(
-            bar_chart(
-                "Forbidden cues: standardised direct weight (dashed: policy tolerance)",
-                [
-                    f"{r['decision_maker']} {r['cue']}{' FLAGGED' if r['flagged'] else ''}"
-                    for r in recs
-                ],
-                [("std weight", "#b23a48", [r["std_weight"] for r in recs])],
-                lo=-span,
-                hi=span,
-                marks=(-tolerance, tolerance),
-            )
-        )
-    return charts
-
-
 _CSS = """
 body{font:14px/1.45 system-ui,-apple-system,Segoe UI,sans-serif;margin:24px;color:#1d2430;max-width:1200px}
 h1{font-size:22px}h2{font-size:17px;margin-top:28px;border-bottom:1px solid #ccd3dd}
@@ -360,25 +271,61 @@ table{border-collapse:collapse;font-size:12px;margin:8px 0}
 th,td{border:1px solid #d5dbe3;padding:3px 6px;text-align:left;white-space:nowrap}
 th{background:#dde4ee;position:sticky;top:0}td.n{text-align:right;font-variant-numeric:tabular-nums}
 .wrap{overflow-x:auto;max-height:480px}pre{white-space:pre-wrap;background:#f5f7fa;padding:10px}
-.chart{margin:8px 16px 8px 0}.ct{font-weight:600;font-size:13px}.lb,.lg,.na{font-size:11px}
+.chart{margin:8px 16px 8px 0}.ct{font-weight:600;font-size:13px}.lb,.lg,.tk,.na{font-size:11px}
 .na{fill:#888}.ax{stroke:#666}.mk{stroke:#444;stroke-dasharray:4 3}
 dl{display:grid;grid-template-columns:max-content auto;gap:2px 14px}dt{font-weight:600}
+@media print{
+body{margin:0;max-width:none;font-size:11px}
+.wrap{overflow:visible;max-height:none}
+table{font-size:8px;width:100%;table-layout:auto}
+th{position:static}
+th,td{white-space:normal;overflow-wrap:anywhere;padding:1px 3px}
+tr,.chart{break-inside:avoid}h2{break-after:avoid}
+}
 """
 
 
-def _table_html(t: Table) -> str:
+def cell_text(value: object, name: str, kind: str) -> str:
+    """A table cell as the report shows it: four significant digits, whole numbers of a
+    count column as integers, a floored p- or q-value as '<1e-300'."""
+    if kind == "float" and is_probability(name) and value is not None and value <= P_FLOOR:
+        return f"<{P_FLOOR:g}"
+    if kind == "number" and whole(value) is not None:
+        return str(whole(value))
+    if isinstance(value, float):
+        return f"{value:.4g}"
+    return csv_text(value)
+
+
+def _more_rows_note(t: Table, fmts: Sequence[str]) -> str:
+    """Where the rows past MAX_HTML_ROWS are, in the formats this pack was written in."""
+    shown = f"The first {MAX_HTML_ROWS} of {len(t.rows)} rows are shown"
+    places = [f"{t.name}.{f}" for f in ("csv", "parquet") if f in fmts]
+    if "xlsx" in fmts:
+        places.append(f"the workbook's {t.name} sheet")
+    if places:
+        where = places[0] if len(places) == 1 else ", ".join(places[:-1]) + " and " + places[-1]
+        return f"{shown}; every row is in {where}."
+    return (
+        f"{shown}; this pack was written as HTML only, so the other "
+        f"{len(t.rows) - MAX_HTML_ROWS} rows are in none of its files: export again with "
+        "--format csv (or parquet, xlsx) for every row."
+    )
+
+
+def _table_html(t: Table, fmts: Sequence[str]) -> str:
     kinds = dict(t.columns)
     head = "".join(f"<th>{html.escape(c)}</th>" for c in t.names)
     body = []
     for row in t.rows[:MAX_HTML_ROWS]:
         cells = []
         for c, v in zip(t.names, row, strict=True):
-            num = kinds[c] in ("int", "float")
-            text = f"{v:.4g}" if isinstance(v, float) else csv_text(v)
+            num = kinds[c] in ("int", "float", "number")
+            text = cell_text(v, c, kinds[c])
             cells.append(f"<td{' class=n' if num else ''}>{html.escape(text)}</td>")
         body.append("<tr>" + "".join(cells) + "</tr>")
-    more = len(t.rows) - MAX_HTML_ROWS
-    note = f"<p>{more} more rows in {t.name}.csv / the workbook.</p>" if more > 0 else ""
+    more = len(t.rows) > MAX_HTML_ROWS
+    note = f'<p class="more">{html.escape(_more_rows_note(t, fmts))}</p>' if more else ""
     return (
         f'<h2 id="{t.name}">{html.escape(t.title)} <small>({t.name}, {len(t.rows)} rows)'
         f'</small></h2><div class="wrap"><table><thead><tr>{head}</tr></thead><tbody>'
@@ -387,8 +334,15 @@ def _table_html(t: Table) -> str:
     )
 
 
-def write_html(tables: Sequence[Table], path: Path, manifest: dict, method: str) -> Path:
-    """Write the self-contained report (no script, no external resource)."""
+def write_html(
+    tables: Sequence[Table],
+    path: Path,
+    manifest: dict,
+    method: str,
+    fmts: Sequence[str] = ("html",),
+) -> Path:
+    """Write the self-contained report (no script, no external resource); ``fmts`` are
+    the formats the pack is written in (a long table's note says where its rows are)."""
     by = {t.name: t for t in tables}
     tolerance = float(manifest["policy"]["tolerance"])
     fp = manifest["store_fingerprint"]
@@ -417,9 +371,9 @@ def write_html(tables: Sequence[Table], path: Path, manifest: dict, method: str)
         + "</dl>",
         *(f'<p class="warning">{html.escape(w)}</p>' for w in manifest.get("warnings", [])),
         f'<p class="caution"><b>Caution.</b> {html.escape(CAUTION)}</p>',
-        '<h2 id="charts">Key charts</h2><div>' + "".join(_charts(by, tolerance)) + "</div>",
+        '<h2 id="charts">Key charts</h2><div>' + "".join(key_charts(by, tolerance)) + "</div>",
         "<p>Tables: " + ", ".join(f'<a href="#{t.name}">{t.name}</a>' for t in tables) + "</p>",
-        *(_table_html(t) for t in tables),
+        *(_table_html(t, fmts) for t in tables),
         f'<h2 id="methodology">Methodology and cautions</h2><pre>{html.escape(method)}</pre>',
         "</body></html>",
     ]

@@ -8,14 +8,15 @@ import sys
 from pathlib import Path
 
 from monitor.config import Config
+from monitor.palette import COLOURS
 
 # Our own palette, passed as theme options so no file outside the package is needed.
 THEME = {
     "theme.base": "light",
-    "theme.primaryColor": "#1f6f78",
+    "theme.primaryColor": COLOURS["person"],
     "theme.backgroundColor": "#fbfaf7",
     "theme.secondaryBackgroundColor": "#eef2ef",
-    "theme.textColor": "#1d2b2f",
+    "theme.textColor": COLOURS["ink"],
 }
 
 
