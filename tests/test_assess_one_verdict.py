@@ -51,7 +51,12 @@ def _quarter_of(day: date) -> tuple[str, date, date]:
 
 
 def _pack_findings(config, quarter: str, out: Path, as_of: str | None = None) -> pd.DataFrame:
-    export(config, quarter=quarter, out_dir=out, formats=["csv"], as_of=as_of)
+    result = export(config, quarter=quarter, out_dir=out, formats=["csv"], as_of=as_of)
+    # The summary counts the quarter table's verdicts, direct and through proxies.
+    fc = pd.read_csv(out / "forbidden_cues.csv")
+    direct = int((fc["flagged"].astype(str).str.lower() == "true").sum())
+    proxy = int((fc["proxy_flagged"].astype(str).str.lower() == "true").sum())
+    assert f"{direct} flagged for direct use, {proxy} through proxies" in result["summary"]
     t = pd.read_csv(out / "window_findings.csv", dtype={"level": str})
     t["window_end"] = pd.to_datetime(t["window_end"]).dt.date
     for col in ("flagged", "assessable", "level_detail"):

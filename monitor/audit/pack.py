@@ -481,11 +481,14 @@ def _summary(label, as_of, tables: list[Table], out_dir, compare: bool, warnings
         dm = by["decision_makers"]
         makers = sum(1 for s in dm.column("scope") if s == "decision_maker")
         total = next(r for r in dm.records() if r["scope"] == "all")
-        flagged = sum(1 for f in by["forbidden_cues"].column("flagged") if f)
+        fc = by["forbidden_cues"]
+        direct = sum(1 for f in fc.column("flagged") if f)
+        proxy = sum(1 for f in fc.column("proxy_flagged") if f)
         head = (
             f"{label} as of {as_of}: {makers} decision-maker(s), {total['n_decisions']} "
-            f"decisions ({total['n_linked']} with outcomes); {flagged} forbidden-cue "
-            f"finding(s) flagged; {len(by['alerts'].rows)} alert(s)"
+            f"decisions ({total['n_linked']} with outcomes); forbidden cues over the whole "
+            f"quarter: {direct} flagged for direct use, {proxy} through proxies; "
+            f"{len(by['alerts'].rows)} alert(s)"
         )
     lines = [f"{head}; tables written to {out_dir}."]
     lines += [f"WARNING: {w}" for w in warnings]
