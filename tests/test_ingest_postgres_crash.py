@@ -117,7 +117,9 @@ def test_sigkill_during_pulls_loses_and_duplicates_nothing(tmp_path, postgres_se
     cfg = _config(tmp_path, "pg.toml")
     assert run_cli(cfg, "init").returncode == 0
     killed = 0
-    for i, fraction in enumerate((0.2, 0.45, 0.7, 0.9, 0.3, 0.6, 0.85)):
+    # Kills up to three quarters of the measured run: a later run that happens to be
+    # faster than the measured one (a shared machine) still meets most of them mid-run.
+    for i, fraction in enumerate((0.15, 0.35, 0.55, 0.75, 0.25, 0.5, 0.7)):
         if i == 4:  # more rows arrive: the later kills hit an incremental pull
             _load(url, ROWS + 1, ROWS)
         proc = _pull_process(cfg, url)
