@@ -42,7 +42,7 @@ def _cut(m):
     return a - (a - m)
 
 
-@njit(cache=True)
+@njit(cache=True, inline="always")
 def _add_row(acc, b, vals, crit, sh, p, half, u):
     """Add one row (shifted values ``vals - sh``, criterion ``crit``: NaN when the row
     has no current outcome) to bucket row ``b`` of ``acc``: to its first half when the
@@ -73,7 +73,7 @@ def _add_row(acc, b, vals, crit, sh, p, half, u):
         at += p - i
 
 
-@njit(cache=True)
+@njit(cache=True, inline="always")
 def _bucket_of(e, d, bmap, span, d0, b_ent, b_day, b_team, nb):
     key = e * span + (d - d0)
     b = bmap[key]
