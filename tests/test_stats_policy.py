@@ -22,7 +22,13 @@ from monitor.stats.design import cue_columns
 from monitor.stats.episodes import Episode, episodes, window_states
 from monitor.stats.moments import moments_from_rows
 from monitor.stats.policy import bh_qvalues, flag_forbidden, forbidden_cue_decomposition
-from monitor.stats.trends import achievement_floor, below_floor, consistency_floor, weight_drift
+from monitor.stats.trends import (
+    achievement_floor,
+    below_floor,
+    consistency_floor,
+    cue_drift,
+    weight_drift,
+)
 
 NUMERIC = ["amount", "gender", "delay", "witness"]  # "gender" sits mid-design on purpose
 CATEGORICAL = ["amount", "region=north", "region=west", "delay", "witness"]
@@ -443,6 +449,26 @@ def test_drift_matches_weighted_pooled_regression_exactly():
         np.testing.assert_allclose(drift.joint_p[w], wald.pvalue, rtol=1e-6, atol=1e-300)
     assert (drift.joint_df == 4).all() and (drift.reason == "").all()
     assert drift.joint_p[0] > 0.01 and drift.joint_p[1] < 1e-3  # a direct weight of 1.0 appears
+
+
+def test_one_cue_drift_is_the_wald_test_of_its_columns_in_the_weighted_pooled_regression():
+    # A cue with several design columns (here columns 1 and 2 taken as one cue's
+    # dummies) gets one verdict: the Wald chi2 of the change in those columns only.
+    firsts, seconds = _drift_pairs(1.0, 2.0)
+    fa, fb = _sm_fits(firsts, NUMERIC), _sm_fits(seconds, NUMERIC)
+    stat, df, p = cue_drift(fa, fb, [1, 2])
+    for w in range(3):
+        # Source: statsmodels WLS as in the test above; wald_test restricted to the two
+        # interaction terms of those columns.
+        wts = np.r_[np.full(200, fa.sigma[w] ** -2), np.full(260, fb.sigma[w] ** -2)]
+        res, inter = _pooled(firsts[w], seconds[w], weights=wts)
+        wald = res.wald_test(np.eye(len(res.params))[inter[[1, 2]]], use_f=False, scalar=True)
+        np.testing.assert_allclose(stat[w], wald.statistic, rtol=1e-8)
+        np.testing.assert_allclose(p[w], wald.pvalue, rtol=1e-6, atol=1e-300)
+    assert (df == 2).all()
+    # One column: the square of that column's z.
+    single, _, _ = cue_drift(fa, fb, [0])
+    np.testing.assert_allclose(single, weight_drift(fa, fb).z[:, 0] ** 2, rtol=1e-9)
 
 
 def test_drift_joint_test_close_to_chow_f_test_under_equal_variances():
