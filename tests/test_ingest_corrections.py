@@ -24,7 +24,7 @@ import pytest
 import statsmodels.api as sm
 from helpers.cli import ingest_json, run_cli, text
 from helpers.configs import DECISION_COLUMNS, OUTCOME_COLUMNS, REPO, make_config
-from helpers.files import decision_row, outcome_row, write_csv, write_large_decisions_csv
+from helpers.files import outcome_row, varied_decision, write_csv, write_large_decisions_csv
 from helpers.store_rows import design_frame, query, read_store
 
 import monitor.ingest.store_batch as store_batch_module
@@ -36,22 +36,8 @@ N = 150
 
 
 def _row(i: int, **fields) -> dict:
-    """decision_row(i) with cue values and a judgment drawn from a seeded generator
-    (decision_row's own cues are functions of i, collinear within one handler)."""
-    rng = np.random.default_rng(1000 + i)
-    amount, age = rng.uniform(0, 1000), rng.integers(0, 365)
-    report, witness = rng.integers(0, 2), rng.integers(0, 2)
-    score = 20 + 0.03 * amount + 0.05 * age + 10 * report - 5 * witness + rng.normal(0, 5)
-    values = {
-        "amount": f"{amount:.2f}",
-        "age_days": str(age),
-        "report": "Y" if report else "N",
-        "witness": str(witness),
-        "region": str(rng.choice(["north", "south"])),
-        "band": str(rng.choice(["a", "b", "c"])),
-        "score": f"{min(max(score, 0), 100):.1f}",
-    }
-    return decision_row(i, **{**values, **fields})
+    """decision_row(i) with varied cues and judgment (tests/helpers/files.py)."""
+    return varied_decision(i, 1000, **fields)
 
 
 def _config(tmp_path, **overrides):

@@ -12,36 +12,21 @@ its raw rows (method 'qr') and agrees with statsmodels to 1e-9.
 
 from __future__ import annotations
 
-import numpy as np
 import pytest
 import statsmodels.api as sm
 from helpers.cli import ingest_json, run_cli, text
 from helpers.configs import make_config
-from helpers.files import decision_row, write_csv
+from helpers.files import varied_decision, write_csv
 from helpers.store_rows import design_frame, query, read_store
 
 from monitor.config import load_config
 
 
 def _row(i: int, day: str, **fields) -> dict:
-    """A decision of handler h{i % 2} on ``day`` with cues and a judgment drawn from a
-    seeded generator (invented data for the test)."""
-    rng = np.random.default_rng(7000 + i)
-    amount, age = rng.uniform(0, 1000), rng.integers(0, 365)
-    report, witness = rng.integers(0, 2), rng.integers(0, 2)
-    score = 20 + 0.03 * amount + 0.05 * age + 10 * report - 5 * witness + rng.normal(0, 5)
-    values = {
-        "handler": f"h{i % 2}",
-        "decided": f"{day} {8 + i % 10:02d}:{i % 60:02d}:00",
-        "amount": f"{amount:.2f}",
-        "age_days": str(age),
-        "report": "Y" if report else "N",
-        "witness": str(witness),
-        "region": str(rng.choice(["north", "south"])),
-        "band": str(rng.choice(["a", "b", "c"])),
-        "score": f"{min(max(score, 0), 100):.1f}",
-    }
-    return decision_row(i, **{**values, **fields})
+    """A decision of handler h{i % 2} on ``day`` with varied cues and judgment
+    (tests/helpers/files.py)."""
+    when = {"handler": f"h{i % 2}", "decided": f"{day} {8 + i % 10:02d}:{i % 60:02d}:00"}
+    return varied_decision(i, 7000, **{**when, **fields})
 
 
 def _config(tmp_path, **overrides):

@@ -199,23 +199,23 @@ def _evidence(row: pd.Series) -> dict:
         size = row["statistic"]
     ev = {
         "window": {"start": _iso(row["window_start"]), "end": _iso(row["window_end"])},
-        "std_weight": _num(size),
-        "interval": [_num(row.get("ci_low")), _num(row.get("ci_high"))],
-        "q_value": _num(row.get("q_value")),
-        "p_value": _num(row.get("p_value")),
+        "std_weight": finite_or_none(size),
+        "interval": [finite_or_none(row.get("ci_low")), finite_or_none(row.get("ci_high"))],
+        "q_value": finite_or_none(row.get("q_value")),
+        "p_value": finite_or_none(row.get("p_value")),
         "n": None if pd.isna(row.get("n")) else int(row["n"]),
     }
     if kind in ("forbidden_cue", "proxy_use"):
         ev.update(
             level=row.get("level") if isinstance(row.get("level"), str) else None,
-            disparity=_num(row.get("disparity")),
-            direct=_num(row.get("direct")),
-            indirect=_num(row.get("indirect")),
-            std_disparity=_num(row.get("std_disparity")),
-            std_indirect=_num(row.get("std_indirect")),
+            disparity=finite_or_none(row.get("disparity")),
+            direct=finite_or_none(row.get("direct")),
+            indirect=finite_or_none(row.get("indirect")),
+            std_disparity=finite_or_none(row.get("std_disparity")),
+            std_indirect=finite_or_none(row.get("std_indirect")),
         )
     if kind == "drift":
-        ev.update(change=_num(row.get("direct")), z=_num(row.get("statistic")))
+        ev.update(change=finite_or_none(row.get("direct")), z=finite_or_none(row.get("statistic")))
         # Since when: the change-point estimate and its interval (None where unknown).
         ev["since"] = {
             "estimate": _iso(row.get("change_day")),
@@ -224,7 +224,8 @@ def _evidence(row: pd.Series) -> dict:
         }
     if kind in ("consistency", "achievement"):
         ev.update(
-            figure="R_s" if kind == "consistency" else "r_a", value=_num(row.get("statistic"))
+            figure="R_s" if kind == "consistency" else "r_a",
+            value=finite_or_none(row.get("statistic")),
         )
     return ev
 
@@ -507,7 +508,8 @@ def _iso(v) -> str | None:
     return str(v)
 
 
-def _num(v) -> float | None:
+def finite_or_none(v) -> float | None:
+    """``v`` as a float, or None when it is missing, not a number or not finite."""
     try:
         f = float(v)
     except (TypeError, ValueError):

@@ -11,10 +11,15 @@ from __future__ import annotations
 
 from dataclasses import dataclass
 
-import numpy as np
 import pandas as pd
 
-from monitor.assess.alerts import ALERT_KINDS, STATES, AlertUsageError, list_alerts
+from monitor.assess.alerts import (
+    ALERT_KINDS,
+    STATES,
+    AlertUsageError,
+    finite_or_none,
+    list_alerts,
+)
 from monitor.assess.wording import describe_finding
 from monitor.cautions import CAUTION, LINKED_OUTCOMES_NOTE
 from monitor.config import Config
@@ -229,8 +234,8 @@ def explain_alert(config: Config, alert_id: int) -> AlertExplanation:
             {
                 "proxy_cue": r.proxy_cue,
                 "level": r.level if isinstance(r.level, str) else None,
-                "part": _num(r.part),
-                "std_part": _num(r.std_part),
+                "part": finite_or_none(r.part),
+                "std_part": finite_or_none(r.std_part),
             }
             for r in proxies.itertuples(index=False)
         ],  # fmt: skip
@@ -304,11 +309,11 @@ def _series(f: pd.DataFrame, alert: dict, consecutive: int) -> list[dict]:
             "window_end": end,
             "level": r.level if isinstance(r.level, str) else None,
             "n": None if pd.isna(r.n) else int(r.n),
-            "size": _num(r.size),
-            "ci_low": _num(r.ci_low),
-            "ci_high": _num(r.ci_high),
-            "p_value": _num(r.p_value),
-            "q_value": _num(r.q_value),
+            "size": finite_or_none(r.size),
+            "ci_low": finite_or_none(r.ci_low),
+            "ci_high": finite_or_none(r.ci_high),
+            "p_value": finite_or_none(r.p_value),
+            "q_value": finite_or_none(r.q_value),
             "flagged": bool(r.flagged),
             "assessable": bool(r.assessable),
             "reason": r.reason if isinstance(r.reason, str) and r.reason else None,
@@ -354,14 +359,6 @@ def _p(v) -> str:
 
 def _f(v, digits: int = 2) -> str:
     return "-" if v is None else f"{v:+.{digits}f}"
-
-
-def _num(v) -> float | None:
-    try:
-        f = float(v)
-    except (TypeError, ValueError):
-        return None
-    return f if np.isfinite(f) else None
 
 
 def _day(v) -> str | None:

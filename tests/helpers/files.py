@@ -10,6 +10,7 @@ from pathlib import Path
 from typing import Any
 
 import duckdb
+import numpy as np
 
 from helpers.configs import DECISION_COLUMNS
 
@@ -31,6 +32,26 @@ def decision_row(i: int, **fields: Any) -> dict[str, Any]:
     }
     row.update({k: ("" if v is None else str(v)) for k, v in fields.items()})
     return row
+
+
+def varied_decision(i: int, seed: int, **fields: Any) -> dict[str, Any]:
+    """decision_row(i) with cue values and a judgment drawn from a generator seeded by
+    ``seed + i`` (decision_row's own cues are functions of i, collinear within one
+    handler); ``fields`` override any value.  Invented data for the tests."""
+    rng = np.random.default_rng(seed + i)
+    amount, age = rng.uniform(0, 1000), rng.integers(0, 365)
+    report, witness = rng.integers(0, 2), rng.integers(0, 2)
+    score = 20 + 0.03 * amount + 0.05 * age + 10 * report - 5 * witness + rng.normal(0, 5)
+    values = {
+        "amount": f"{amount:.2f}",
+        "age_days": str(age),
+        "report": "Y" if report else "N",
+        "witness": str(witness),
+        "region": str(rng.choice(["north", "south"])),
+        "band": str(rng.choice(["a", "b", "c"])),
+        "score": f"{min(max(score, 0), 100):.1f}",
+    }
+    return decision_row(i, **{**values, **fields})
 
 
 def outcome_row(i: int, **fields: Any) -> dict[str, Any]:
