@@ -11,15 +11,17 @@ STAMP  := $(VENV)/.installed
 CHROMIUM ?= /usr/bin/chromium
 OPENSSL  ?= openssl
 PG_INITDB ?= /usr/lib/postgresql/*/bin/initdb
+# The Spark tests ([lake]: tests/test_lake_spark.py) run Spark in local mode on a Java runtime.
+JAVA     ?= java
 APT_GET  ?= apt-get
 STRICT   := $(filter true True TRUE 1,$(CI))
 
-.PHONY: demo test lint bench clean browser openssl postgres
+.PHONY: demo test lint bench clean browser openssl postgres java
 
 $(STAMP): pyproject.toml
 	$(PYTHON) -m venv $(VENV)
 	$(BIN)/pip install --quiet --upgrade pip
-	$(BIN)/pip install --quiet -e '.[test,postgres]'
+	$(BIN)/pip install --quiet -e '.[test,postgres,spark]'
 	touch $(STAMP)
 
 demo: $(STAMP)
@@ -45,7 +47,10 @@ openssl:
 postgres:
 	$(call system_need,PostgreSQL ($(PG_INITDB)),ls $(PG_INITDB) >/dev/null 2>&1,postgresql)
 
-test: $(STAMP) browser openssl postgres
+java:
+	$(call system_need,a Java runtime ($(JAVA)),command -v $(JAVA) >/dev/null 2>&1,openjdk-17-jre-headless)
+
+test: $(STAMP) browser openssl postgres java
 	$(BIN)/ruff check monitor dashboards synthetic_logs tests benchmarks
 	$(BIN)/python -m pytest -q
 

@@ -150,6 +150,45 @@ class PostgresSourceConfig(_Strict):
         return self
 
 
+class LakeConfig(_Strict):
+    """``[lake]``: the decision and outcome logs live in a data lake (Parquet datasets or
+    tables of a Spark catalog) and ``cuewatch refit`` computes the bucket statistics on
+    Apache Spark (monitor.lake); only the buckets travel back to the store."""
+
+    # Each kind: a Parquet dataset (a file or folder: a local path, relative to this
+    # file, or a URL such as s3a://... or hdfs://...) or a table of the Spark catalog.
+    decisions: str | None = None
+    decisions_table: str | None = None
+    outcomes: str | None = None
+    outcomes_table: str | None = None
+    # A column of both datasets that grows with every row added (a load sequence number,
+    # an ingestion time): a run reads the rows above the watermark of the last run.
+    watermark: str
+    # Spark's master: local[*] on this machine, spark://host:7077, yarn, k8s://...
+    master: str = "local[*]"
+    # Where rejected rows are written (one Parquet folder per kind and run); default
+    # beside the input: <dataset>_quarantine.  Required for catalog tables.
+    quarantine: str | None = None
+    # Extra Spark settings (spark.executor.memory, spark.sql.shuffle.partitions, ...).
+    spark_conf: dict[str, str] = Field(default_factory=dict)
+
+    _watermark = field_validator("watermark")(_column_name)
+
+    @model_validator(mode="after")
+    def _sources(self) -> LakeConfig:
+        if (self.decisions is None) == (self.decisions_table is None):
+            raise ValueError("give exactly one of decisions and decisions_table")
+        if self.outcomes is not None and self.outcomes_table is not None:
+            raise ValueError("give at most one of outcomes and outcomes_table")
+        tables = self.decisions_table is not None or self.outcomes_table is not None
+        if tables and self.quarantine is None:
+            raise ValueError("a catalog table has no folder beside it: set quarantine")
+        return self
+
+    def has_outcomes(self) -> bool:
+        return self.outcomes is not None or self.outcomes_table is not None
+
+
 class DecisionsConfig(_Strict):
     landing: Path | None = None
     id: str
@@ -448,6 +487,7 @@ class Config(_Strict):
     schedule: ScheduleConfig = Field(default_factory=ScheduleConfig)
     ingest: IngestConfig = Field(default_factory=IngestConfig)
     dashboard: DashboardConfig = Field(default_factory=DashboardConfig)
+    lake: LakeConfig | None = None
 
     # Not part of the file: where it came from and its content hash.
     source: Annotated[Path | None, Field(exclude=True)] = None
@@ -479,6 +519,14 @@ class Config(_Strict):
         for cue in self.policy.forbidden:
             if cue not in self.cues:
                 raise ValueError(f"policy.forbidden: {cue!r} is not a declared cue")
+        if self.lake is not None:
+            if self.decisions.change is not None:
+                raise ValueError(
+                    "lake: decisions.change (corrections) is not read from a lake; "
+                    "leave it out or ingest the files instead"
+                )
+            if self.lake.has_outcomes() and self.outcomes is None:
+                raise ValueError("lake: outcomes are named but there is no [outcomes] section")
         return self
 
     # --- derived views used by other stages -------------------------------------------
@@ -540,6 +588,14 @@ def _resolve(base: Path, path: Path | None) -> Path | None:
     return path if path.is_absolute() else (base / path).resolve()
 
 
+def _resolve_location(base: Path, location: str | None) -> str | None:
+    """A lake location: a URL (scheme://...) as given, a local path resolved like the
+    file's other paths."""
+    if location is None or re.match(r"^[A-Za-z][A-Za-z0-9+.-]*://", location):
+        return location
+    return str(_resolve(base, Path(location)))
+
+
 def load_config(path: str | os.PathLike | None = None) -> Config:
     """Read, validate and resolve a configuration file.
 
@@ -575,6 +631,13 @@ def load_config(path: str | os.PathLike | None = None) -> Config:
         "source": source,
         "digest": hashlib.sha256(raw_bytes).hexdigest(),
     }
+    if cfg.lake is not None:
+        updates["lake"] = cfg.lake.model_copy(
+            update={
+                k: _resolve_location(base, getattr(cfg.lake, k))
+                for k in ("decisions", "outcomes", "quarantine")
+            }  # fmt: skip
+        )
     if cfg.outcomes is not None:
         updates["outcomes"] = cfg.outcomes.model_copy(
             update={"landing": _resolve(base, cfg.outcomes.landing)}

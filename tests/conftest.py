@@ -14,7 +14,7 @@ from helpers.cli import run_cli, text
 from helpers.configs import make_config
 
 # The session's PostgreSQL server fixture (`postgres_server`), started once when a test asks.
-pytest_plugins = ["helpers.postgres_server"]
+pytest_plugins = ["helpers.postgres_server", "helpers.lake"]
 
 
 @pytest.fixture

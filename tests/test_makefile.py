@@ -66,7 +66,7 @@ class Make:
         return subprocess.run(
             [MAKE, "--no-print-directory", "-f", str(self.makefile), target,
              f"CHROMIUM={chromium}", f"OPENSSL={openssl}", f"APT_GET={self.apt}",
-             f"PG_INITDB={self.present}",
+             f"PG_INITDB={self.present}", f"JAVA={self.present}",
              f"BIN={self.venv_bin}", f"STAMP={self.stamp}"],
             cwd=self.root, env=env, capture_output=True, text=True, timeout=60,
         )  # fmt: skip

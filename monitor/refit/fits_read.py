@@ -137,9 +137,21 @@ def data_spans(con) -> dict[tuple[str, str], tuple[date, date]]:
     """(scope, key) -> the first and last day with decisions of every stored series."""
     import pandas as pd
 
+    sql = _DATA_SPAN_SQL
+    if (
+        not con.execute("SELECT count(*) FROM (SELECT 1 FROM decisions LIMIT 1)").fetchone()[0]
+        and con.execute(
+            "SELECT count(*) FROM duckdb_tables() WHERE table_name = 'bucket_stats'"
+        ).fetchone()[0]
+    ):
+        # A store fed from a data lake ([lake]) holds buckets, not decisions: a bucket is
+        # a (decision-maker, day) with decisions, its team the largest of its rows'.
+        sql = sql.replace("decided_day", "day").replace(
+            "FROM decisions", "FROM (SELECT * FROM bucket_stats WHERE NOT linked_only)"
+        )
     return {
         (r.scope, r.key): (pd.Timestamp(r.first_day).date(), pd.Timestamp(r.last_day).date())
-        for r in con.execute(_DATA_SPAN_SQL).df().itertuples(index=False)
+        for r in con.execute(sql).df().itertuples(index=False)
         if not pd.isna(r.first_day)
     }
 

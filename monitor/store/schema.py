@@ -366,6 +366,27 @@ MIGRATIONS: list[tuple[int, str, list[str]]] = [
             )""",
         ],
     ),
+    (
+        11,
+        "lake_runs: the ranges of a data lake's rows each Spark refit read ([lake])",
+        [
+            # One row per kind and run of the Spark path (monitor.lake): the lake rows whose
+            # watermark (an integer, or a timestamp as epoch microseconds) lies in
+            # (after, through] were first read by batch_id, and were checked against that
+            # run's clock (horizon: the latest plausible timestamp).  The store holds no
+            # lake row itself; these ranges make every later run check a row as its first
+            # run did.  Written in the transaction that writes the run's buckets.
+            """CREATE TABLE lake_runs (
+                kind VARCHAR NOT NULL,
+                batch_id BIGINT NOT NULL,
+                watermark_after BIGINT,
+                watermark_through BIGINT NOT NULL,
+                horizon TIMESTAMPTZ NOT NULL,
+                quarantine VARCHAR,
+                PRIMARY KEY (kind, watermark_through)
+            )""",
+        ],
+    ),
 ]
 
 
