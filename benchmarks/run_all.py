@@ -14,6 +14,7 @@ BENCHMARKS = [
     "benchmarks.bench_dashboard",
     "benchmarks.bench_alerts",
     "benchmarks.bench_postgres",
+    "benchmarks.bench_spark",
 ]
 
 
