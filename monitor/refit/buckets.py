@@ -238,12 +238,14 @@ def _in_buckets(
     )
 
 
-def full_sql(config: Config, only: str | None = None) -> str:
+def full_sql(config: Config, only: str | None = None, day_range: tuple | None = None) -> str:
     """Every stored decision's bucket statistics: per (decision_maker, day) one row with
     ``linked_only`` false (all the day's decisions; criterion entries 0) and one with
     ``linked_only`` true (the decisions with a current outcome).  Returns
     decision_maker, day, linked_only, team (max) and ``sums`` DOUBLE[set_width].
-    ``only``: a table of (decision_maker, day) buckets to compute instead of all.
+    ``only``: a table of (decision_maker, day) buckets to compute instead of all;
+    ``day_range`` (first, last day of those buckets) lets DuckDB skip the row groups of
+    other days.
 
     The all-rows set needs no outcome: it is summed from the decisions alone, and only
     the linked set joins the current outcomes (an inner join over the outcomes).  Plain
@@ -253,6 +255,9 @@ def full_sql(config: Config, only: str | None = None) -> str:
     present = _cues_present(config)
     outcomes = current_outcome_sql()
     if only is not None:
+        if day_range is not None:
+            lo, hi = (lit(str(d)) for d in day_range)
+            present += f" AND d.decided_day BETWEEN {lo}::DATE AND {hi}::DATE"
         present += f" AND {_in_buckets(only)}"
         outcomes = current_outcome_sql(
             decision_filter=f"decision_id IN (SELECT d.decision_id FROM decisions d WHERE {present})"

@@ -90,10 +90,6 @@ def latest_teams(
     return out
 
 
-# Bytes of the dense (decision-maker, day) grid built at once by ``window_sums``.
-GRID_BYTES = 4 << 20
-
-
 def window_sums(
     ent: np.ndarray,
     day: np.ndarray,
@@ -109,62 +105,41 @@ def window_sums(
     rows inside a window count.
 
     Days are cut into blocks of ``length`` days (``day // length``), so a window is the
-    tail of one block plus the head of the next (or exactly one block).  On a dense
-    (entity, block, day-in-block) grid, running sums from each block's end backwards
-    (suffix) and from its start (prefix) take two ``cumsum`` passes; a window is then one
-    suffix plus one prefix.  Each is summed over days inside the window only, in a fixed
-    order, so a window's sums do not depend - to the last bit - on which other days were
-    loaded: an incremental refresh reproduces a full one.  The grid is built for a
-    chunk of entities at a time (``GRID_BYTES``).
+    tail of one block plus the head of the next (or exactly one block).  Per entity,
+    running sums from each block's end backwards (suffix) and from its start (prefix)
+    are taken on a small grid of its days; a window is then one suffix plus one prefix.
+    Each is summed over days inside the window only, in a fixed order, so a window's
+    sums do not depend - to the last bit - on which other days were loaded: an
+    incremental refresh reproduces a full one.  Compiled (``window_kernel``).
     """
+    from monitor.refit.window_kernel import window_sums_sorted  # numba, loaded on first use
+
     ent = np.asarray(ent, dtype=np.int64)
     day = np.asarray(day, dtype=np.int64)
-    linked = np.asarray(linked, dtype=bool)
+    linked = np.asarray(linked, dtype=np.bool_)
     win_ent = np.asarray(win_ent, dtype=np.int64)
     win_end = np.asarray(win_end, dtype=np.int64)
-    part = sums.shape[1]
-    width = 2 * part
-    out = np.zeros((len(win_end), width))
+    sums = np.ascontiguousarray(sums, dtype=np.float64)
     if not len(win_end) or not len(day):
-        return out
+        return np.zeros((len(win_end), 2 * sums.shape[1]))
     first = win_end - length + 1
     d0 = (int(first.min()) // length) * length
     d1 = (int(win_end.max()) // length + 1) * length  # exclusive
     blocks = (d1 - d0) // length
-    keep = np.flatnonzero((day >= d0) & (day < d1))
-    by_ent = keep[np.argsort(ent[keep], kind="stable")]
-    ent_sorted = ent[by_ent]
-    w_order = np.argsort(win_ent, kind="stable")
-    w_sorted = win_ent[w_order]
-    wanted = np.unique(win_ent)
-    # A small grid per chunk (a few MB) stays in cache: 4x faster than one large grid.
-    step = max(1, GRID_BYTES // (blocks * length * width * 8))
-    for at in range(0, len(wanted), step):
-        chunk = wanted[at : at + step]
-        lo_e, hi_e = int(chunk[0]), int(chunk[-1])
-        grid = np.zeros((len(chunk), blocks, length, width))
-        a, b = np.searchsorted(ent_sorted, [lo_e, hi_e + 1])
-        rows = by_ent[a:b]
-        slot = np.searchsorted(chunk, ent[rows])
-        rows, slot = rows[chunk[slot] == ent[rows]], slot[chunk[slot] == ent[rows]]
-        off = day[rows] - d0
-        for half in (False, True):
-            mine = linked[rows] == half
-            cols = slice(part, width) if half else slice(0, part)
-            grid[slot[mine], off[mine] // length, off[mine] % length, cols] = sums[rows[mine]]
-        suffix = np.cumsum(grid[:, :, ::-1], axis=2)[:, :, ::-1]
-        np.cumsum(grid, axis=2, out=grid)  # now the prefix sums
-        a, b = np.searchsorted(w_sorted, [lo_e, hi_e + 1])
-        w = w_order[a:b]
-        e = np.searchsorted(chunk, win_ent[w])
-        f_off, e_off = first[w] - d0, win_end[w] - d0
-        bf, be = f_off // length, e_off // length
-        res = suffix[e, bf, f_off % length]
-        two = be != bf  # not block-aligned: add the next block's head
-        res[two] += grid[e[two], be[two], e_off[two] % length]
-        out[w] = res
-        del grid, suffix
-    return out
+    return window_sums_sorted(
+        ent,
+        np.argsort(ent, kind="stable"),
+        day,
+        linked,
+        sums,
+        win_ent,
+        np.argsort(win_ent, kind="stable"),
+        first,
+        win_end,
+        d0,
+        int(length),
+        blocks,
+    )
 
 
 @dataclass
