@@ -113,17 +113,21 @@ def sum_buckets(con, config: Config, layout: StatLayout) -> Buckets | None:
         f"WHERE {present}"
     )
     acc = BucketAccumulator(len(makers), p, int(lo), int(hi), float(crit_ref), int(n_rows))
-    for batch in _prefetched(con.sql(sql).to_arrow_reader(BATCH_ROWS)):
-        if not batch.num_rows:
-            continue
-        cols = tuple(_readonly(batch.column(3 + i)) for i in range(p - 1))
-        acc.add(
-            _codes(batch.column(0)),
-            batch.column(1).to_numpy(),
-            _codes(batch.column(2)),
-            cols,
-            _readonly(batch.column(2 + p)),
-        )
+    reader = con.sql(sql).to_arrow_reader(BATCH_ROWS)
+    try:
+        for batch in _prefetched(reader):
+            if not batch.num_rows:
+                continue
+            cols = tuple(_readonly(batch.column(3 + i)) for i in range(p - 1))
+            acc.add(
+                _codes(batch.column(0)),
+                batch.column(1).to_numpy(),
+                _codes(batch.column(2)),
+                cols,
+                _readonly(batch.column(2 + p)),
+            )
+    finally:
+        reader.close()  # a result left open would block the rollback after an error
     res = acc.result()
     keep = res.has_shift
     if not keep.any():
