@@ -1,7 +1,7 @@
-"""The full refit's two helper threads (``refit.full._prefetched`` reads the decision
-batches ahead; ``refit.windows._in_background`` writes the buckets while the windows are
-summed): an error on either thread reaches the caller, the thread is gone afterwards,
-and the store is as it was before the refit (invented demo data)."""
+"""Failures inside the full refit's bucket sums and in its background bucket write
+(``refit.windows._in_background`` writes the buckets while the windows are summed):
+the error reaches the caller, no helper thread is left behind, and the store is as it
+was before the refit (invented demo data)."""
 
 from __future__ import annotations
 
@@ -37,7 +37,7 @@ def _snapshot(config: Config) -> tuple:
 
 
 def _helper_threads() -> set[str]:
-    return {t.name for t in threading.enumerate()} & {"bucket-rows", "bucket-writer"}
+    return {t.name for t in threading.enumerate()} & {"bucket-writer"}
 
 
 def test_a_failure_while_summing_a_batch_leaves_the_store_as_before(demo, monkeypatch):
@@ -54,26 +54,6 @@ def test_a_failure_while_summing_a_batch_leaves_the_store_as_before(demo, monkey
 
     monkeypatch.setattr(kernel.BucketAccumulator, "add", failing_add)
     with pytest.raises(RuntimeError, match="third batch"):
-        refit_windows.refit(demo, full=True)
-    assert not _helper_threads()
-    assert _snapshot(demo) == before
-
-
-def test_a_failure_of_the_reader_reaches_the_caller(demo, monkeypatch):
-    before = _snapshot(demo)
-    monkeypatch.setattr(full, "BATCH_ROWS", 500)
-
-    class Broken:
-        def __init__(self, reader):
-            self.batches = iter(reader)
-
-        def __iter__(self):
-            yield next(self.batches)
-            raise OSError("injected read error after one batch")
-
-    real = full._prefetched
-    monkeypatch.setattr(full, "_prefetched", lambda reader: real(Broken(reader)))
-    with pytest.raises(OSError, match="after one batch"):
         refit_windows.refit(demo, full=True)
     assert not _helper_threads()
     assert _snapshot(demo) == before

@@ -10,9 +10,6 @@ from the in-memory buckets (no read back).
 
 from __future__ import annotations
 
-import queue
-import threading
-
 import numpy as np
 import pyarrow as pa
 
@@ -44,43 +41,6 @@ def _readonly(column: pa.Array) -> np.ndarray:
     out = column.to_numpy(zero_copy_only=False).view()
     out.flags.writeable = False
     return out
-
-
-def _prefetched(reader, depth: int = 2):
-    """The reader's record batches, read ahead on a thread: DuckDB scans and joins the
-    next batch (without the GIL) while the kernel (``nogil``) sums this one, so the two
-    overlap on two cores.  A reader error is raised here, in the caller's thread."""
-    ahead: queue.Queue = queue.Queue(maxsize=depth)
-    stop = threading.Event()
-
-    def pull() -> None:
-        try:
-            for batch in reader:
-                while not stop.is_set():
-                    try:
-                        ahead.put((batch, None), timeout=0.1)
-                        break
-                    except queue.Full:
-                        continue
-                if stop.is_set():
-                    return
-            ahead.put((None, None))
-        except BaseException as exc:  # handed to the consumer
-            ahead.put((None, exc))
-
-    worker = threading.Thread(target=pull, name="bucket-rows", daemon=True)
-    worker.start()
-    try:
-        while True:
-            batch, exc = ahead.get()
-            if exc is not None:
-                raise exc
-            if batch is None:
-                return
-            yield batch
-    finally:
-        stop.set()
-        worker.join()
 
 
 def sum_buckets(con, config: Config, layout: StatLayout) -> Buckets | None:
@@ -115,7 +75,7 @@ def sum_buckets(con, config: Config, layout: StatLayout) -> Buckets | None:
     acc = BucketAccumulator(len(makers), p, int(lo), int(hi), float(crit_ref), int(n_rows))
     reader = con.sql(sql).to_arrow_reader(BATCH_ROWS)
     try:
-        for batch in _prefetched(reader):
+        for batch in reader:
             if not batch.num_rows:
                 continue
             cols = tuple(_readonly(batch.column(3 + i)) for i in range(p - 1))
