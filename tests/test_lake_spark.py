@@ -165,3 +165,36 @@ def test_an_incremental_run_over_two_loads_equals_the_files_and_a_failed_job_cha
     with pytest.raises(RuntimeError, match="executors went away"):
         refit(lake, full=True)
     assert {t: repr(query(lake_cfg, f"SELECT * FROM {t} ORDER BY ALL")) for t in tables} == before
+
+
+def test_a_catalog_table_reads_the_same_rows_as_its_parquet_folder(
+    files_cfg, tmp_path_factory, spark
+):
+    """``decisions_table`` / ``outcomes_table``: the lake's rows named in the Spark catalog
+    (here temporary views over the same Parquet folders) are read as the folders are,
+    row for row, watermark included; a missing table is a clear error."""
+    from monitor.lake import records, source
+
+    folder = tmp_path_factory.mktemp("demo_lake_tables")
+    by_path = load_config(demo_lake(files_cfg, folder))
+    for kind in ("decisions", "outcomes"):
+        spark.read.parquet(str(folder / "lake" / kind)).createOrReplaceTempView(f"lake_{kind}")
+    text = (folder / "ostwyn_lake.toml").read_text(encoding="utf-8")
+    for kind in ("decisions", "outcomes"):
+        text = text.replace(f'{kind} = "{folder / "lake" / kind}"', f'{kind}_table = "lake_{kind}"')
+    text = text.replace("[lake]\n", f'[lake]\nquarantine = "{folder / "quarantine"}"\n')
+    tables_cfg = folder / "ostwyn_tables.toml"
+    tables_cfg.write_text(text, encoding="utf-8")
+    by_table = load_config(tables_cfg)
+    assert by_table.lake.decisions is None and by_table.lake.decisions_table == "lake_decisions"
+    for kind in ("decisions", "outcomes"):
+        a = source._read(spark, by_path, kind)
+        b = source._read(spark, by_table, kind)
+        assert a.count() == b.count() > 0
+        assert a.exceptAll(b).count() == 0 and b.exceptAll(a).count() == 0
+    assert source.quarantine_folder(by_table, "decisions", 9) == str(
+        folder / "quarantine" / "decisions" / "through=9"
+    )
+    spark.catalog.dropTempView("lake_outcomes")
+    with pytest.raises(records.LakeUnreadable, match="table lake_outcomes"):
+        source._read(spark, by_table, "outcomes")
