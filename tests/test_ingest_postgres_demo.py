@@ -9,12 +9,10 @@ pulls them with one nightly run, as the file store read its landing folders.
 
 from __future__ import annotations
 
-import json
-import math
 from pathlib import Path
 
 import pytest
-from helpers.cli import run_cli, text
+from helpers.cli import command_json, json_differences
 from helpers.demo_store import build_demo_store
 from helpers.store_rows import query
 
@@ -24,8 +22,6 @@ from monitor.nightly import run_nightly
 psycopg = pytest.importorskip("psycopg", reason="psycopg is not installed (pip extra 'postgres')")
 
 ENV = "CUEWATCH_TEST_DEMO_DB"
-# Fields that hold the time a row was written, not a figure of the data.
-CLOCK_FIELDS = {"opened_at", "resolved_at", "acknowledged_at", "computed_at", "fitted_at"}
 
 
 def _load_typed(url: str, table: str, csv_path: Path, types: dict[str, str]) -> None:
@@ -47,33 +43,6 @@ def _load_typed(url: str, table: str, csv_path: Path, types: dict[str, str]) -> 
             f"CREATE TABLE {table} AS SELECT row_number() OVER (ORDER BY file_line) AS row_seq, "
             f"{casts} FROM {raw}"
         )
-
-
-def _same(a, b, path="") -> list[str]:
-    """Where two JSON documents differ: floats beyond 1e-9 relative (1e-12 absolute near
-    zero), anything else unequal; the clock fields are left out."""
-    if isinstance(a, dict) and isinstance(b, dict):
-        if set(a) != set(b):
-            return [f"{path}: keys {sorted(set(a) ^ set(b))}"]
-        return [d for k in a if k not in CLOCK_FIELDS for d in _same(a[k], b[k], f"{path}.{k}")]
-    if isinstance(a, list) and isinstance(b, list):
-        if len(a) != len(b):
-            return [f"{path}: {len(a)} items against {len(b)}"]
-        return [
-            d
-            for i, (x, y) in enumerate(zip(a, b, strict=True))
-            for d in _same(x, y, f"{path}[{i}]")
-        ]
-    if isinstance(a, float) and isinstance(b, float | int):
-        ok = math.isclose(a, b, rel_tol=1e-9, abs_tol=1e-12) or (math.isnan(a) and math.isnan(b))
-        return [] if ok else [f"{path}: {a!r} against {b!r}"]
-    return [] if a == b else [f"{path}: {a!r} against {b!r}"]
-
-
-def _json(cfg: Path, *args: str):
-    proc = run_cli(cfg, *args, "--json")
-    assert proc.returncode == 0, text(proc)
-    return json.loads(text(proc)[0])
 
 
 def test_the_demo_from_postgres_fits_and_alerts_as_from_files(
@@ -131,6 +100,6 @@ watermark = "row_seq"
     assert query(pg_cfg, counts) == query(files_cfg, counts)
 
     for args in (("fits",), ("alerts",)):
-        from_files, from_pg = _json(files_cfg, *args), _json(pg_cfg, *args)
+        from_files, from_pg = command_json(files_cfg, *args), command_json(pg_cfg, *args)
         assert from_files, f"{args}: the file store has nothing to compare"
-        assert _same(from_files, from_pg) == [], args
+        assert json_differences(from_files, from_pg) == [], args

@@ -10,13 +10,12 @@ code the rest of the suite checks against statsmodels and hand-worked examples.
 
 from __future__ import annotations
 
-import json
 import shutil
 from pathlib import Path
 
 import duckdb
 import pytest
-from helpers.cli import run_cli, text
+from helpers.cli import command_json, json_differences
 from helpers.demo_store import build_demo_store
 from helpers.lake import demo_lake, lake_config, write_loads
 from helpers.store_rows import query
@@ -28,38 +27,6 @@ from monitor.refit import refit
 from monitor.store.connection import Store
 
 pytest.importorskip("pyspark", reason="pyspark is not installed (pip extra 'spark')")
-
-# Fields that hold the time a row was written, not a figure of the data.
-CLOCK_FIELDS = {"opened_at", "resolved_at", "acknowledged_at", "computed_at", "fitted_at"}
-
-
-def _same(a, b, path="") -> list[str]:
-    """Where two JSON documents differ: floats beyond 1e-9 relative (1e-12 absolute near
-    zero), anything else unequal; the clock fields are left out."""
-    import math
-
-    if isinstance(a, dict) and isinstance(b, dict):
-        if set(a) != set(b):
-            return [f"{path}: keys {sorted(set(a) ^ set(b))}"]
-        return [d for k in a if k not in CLOCK_FIELDS for d in _same(a[k], b[k], f"{path}.{k}")]
-    if isinstance(a, list) and isinstance(b, list):
-        if len(a) != len(b):
-            return [f"{path}: {len(a)} items against {len(b)}"]
-        return [
-            d
-            for i, (x, y) in enumerate(zip(a, b, strict=True))
-            for d in _same(x, y, f"{path}[{i}]")
-        ]
-    if isinstance(a, float) and isinstance(b, float | int):
-        ok = math.isclose(a, b, rel_tol=1e-9, abs_tol=1e-12) or (math.isnan(a) and math.isnan(b))
-        return [] if ok else [f"{path}: {a!r} against {b!r}"]
-    return [] if a == b else [f"{path}: {a!r} against {b!r}"]
-
-
-def _json(cfg: Path, *args: str):
-    proc = run_cli(cfg, *args, "--json")
-    assert proc.returncode == 0, text(proc)
-    return json.loads(text(proc)[0])
 
 
 @pytest.fixture(scope="module")
@@ -120,9 +87,9 @@ def test_the_demo_in_two_loads_through_spark_equals_the_files_and_a_failed_job_c
     assert query(lake_cfg, counts) == query(files_cfg, counts)
     assert query(lake_cfg, "SELECT count(*) FROM decisions")[0][0] == 0
     for args in (("fits",), ("alerts",)):
-        from_files, from_lake = _json(files_cfg, *args), _json(lake_cfg, *args)
+        from_files, from_lake = command_json(files_cfg, *args), command_json(lake_cfg, *args)
         assert from_files, f"{args}: the file store has nothing to compare"
-        assert _same(from_files, from_lake) == [], args
+        assert json_differences(from_files, from_lake) == [], args
     runs = query(
         lake_cfg,
         "SELECT kind, watermark_after, watermark_through FROM lake_runs ORDER BY kind, watermark_through",

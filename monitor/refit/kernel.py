@@ -36,13 +36,13 @@ MAX_START_BUCKETS = 1 << 20
 _SPLIT = 8589934593.0
 
 
-@njit(cache=True, nogil=True)
+@njit(cache=True)
 def _cut(m):
     a = m * _SPLIT
     return a - (a - m)
 
 
-@njit(cache=True, nogil=True, inline="always")
+@njit(cache=True, inline="always")
 def _add_row(acc, b, vals, crit, sh, p, half, u):
     """Add one row (shifted values ``vals - sh``, criterion ``crit``: NaN when the row
     has no current outcome) to bucket row ``b`` of ``acc``: to its first half when the
@@ -73,7 +73,7 @@ def _add_row(acc, b, vals, crit, sh, p, half, u):
         at += p - i
 
 
-@njit(cache=True, nogil=True, inline="always")
+@njit(cache=True, inline="always")
 def _bucket_of(e, d, bmap, span, d0, b_ent, b_day, b_team, nb):
     key = e * span + (d - d0)
     b = bmap[key]
@@ -88,7 +88,7 @@ def _bucket_of(e, d, bmap, span, d0, b_ent, b_day, b_team, nb):
     return b
 
 
-@njit(cache=True, nogil=True)
+@njit(cache=True)
 def _settle(e, shift, has_shift, crit_shift, buf_v, buf_c, buf_day, buf_team, buf_n, acc,
             bmap, span, d0, b_ent, b_day, b_team, nb, p, half):  # fmt: skip
     """Fix decision-maker ``e``'s reference from their buffered rows, then sum those."""
@@ -114,7 +114,7 @@ def _settle(e, shift, has_shift, crit_shift, buf_v, buf_c, buf_day, buf_team, bu
 _BLOCK = 256
 
 
-@njit(cache=True, nogil=True)
+@njit(cache=True)
 def _accumulate(ent, day, team, cols, crit, start, shift, has_shift, crit_shift, buf_v, buf_c,
                 buf_day, buf_team, buf_n, acc, bmap, span, d0, b_ent, b_day, b_team, nb):  # fmt: skip
     """Sum rows ``start..`` of one batch into their buckets.  Returns the number of rows
@@ -162,7 +162,7 @@ def _accumulate(ent, day, team, cols, crit, start, shift, has_shift, crit_shift,
     return n
 
 
-@njit(cache=True, nogil=True)
+@njit(cache=True)
 def _finish(shift, has_shift, crit_shift, buf_v, buf_c, buf_day, buf_team, buf_n, acc, bmap,
             span, d0, b_ent, b_day, b_team, nb):  # fmt: skip
     """Settle every decision-maker still holding rows (fewer than ``SHIFT_ROWS``).
@@ -179,7 +179,7 @@ def _finish(shift, has_shift, crit_shift, buf_v, buf_c, buf_day, buf_team, buf_n
     return -1
 
 
-@njit(cache=True, nogil=True)
+@njit(cache=True)
 def _merge_halves(sums, entries):
     """Add each row's second half (rows with an outcome) to its first (rows without),
     on the entries not about the criterion: the first half becomes the all-rows set."""
@@ -189,7 +189,7 @@ def _merge_halves(sums, entries):
             sums[b, k] += sums[b, half + k]
 
 
-@njit(cache=True, nogil=True)
+@njit(cache=True)
 def _permute_rows(rows, order):
     """rows[:] = rows[order] in place (following the permutation's cycles with one row
     of scratch), so a 200 MB stack is reordered without a second one."""
