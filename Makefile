@@ -15,6 +15,9 @@ PG_INITDB ?= /usr/lib/postgresql/*/bin/initdb
 JAVA     ?= java
 APT_GET  ?= apt-get
 STRICT   := $(filter true True TRUE 1,$(CI))
+# The suite runs on this many pytest-xdist workers; a test file stays on one worker, so a
+# module's fixtures (and the Spark session of tests/test_lake_spark.py) are built once.
+TEST_WORKERS ?= 2
 
 .PHONY: demo test lint bench clean browser openssl postgres java
 
@@ -52,7 +55,7 @@ java:
 
 test: $(STAMP) browser openssl postgres java
 	$(BIN)/ruff check monitor dashboards synthetic_logs tests benchmarks
-	$(BIN)/python -m pytest -q
+	$(BIN)/python -m pytest -q -n $(TEST_WORKERS) --dist loadfile
 
 lint: $(STAMP)
 	$(BIN)/ruff check monitor dashboards synthetic_logs tests benchmarks

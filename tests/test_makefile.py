@@ -97,7 +97,7 @@ def test_outside_ci_make_test_warns_and_runs_the_tests(make):
     assert f"warning: chromium ({make.missing}) is not installed" in proc.stdout
     calls = make.calls()
     assert any(c.startswith("ruff check") for c in calls)
-    assert "python -m pytest -q" in calls
+    assert "python -m pytest -q -n 2 --dist loadfile" in calls
 
 
 @pytest.mark.parametrize(
