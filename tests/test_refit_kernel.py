@@ -110,14 +110,15 @@ def test_small_batches_a_growing_stack_and_short_reference_buffers_change_nothin
 
 def test_rows_without_a_team_and_buckets_with_two_teams_match_the_sql(tmp_path):
     """Teams as the SQL has them: a bucket's team is the greatest of its rows' (two
-    teams within one handler's day here), NULL when none of its rows has one, per set."""
+    teams within one handler's week here), NULL when none of its rows has one, per set."""
     from helpers.cli import ingest_json, run_cli
     from helpers.configs import make_config
     from helpers.files import decision_row, outcome_row, write_csv
 
     cfg_path = make_config(tmp_path, windows={"length_days": 28, "step_days": 7, "min_rows": 5})
     assert run_cli(cfg_path, "init").returncode == 0
-    rows = [decision_row(i, team=None if i % 5 == 0 else ("t1" if i % 2 else "t2"))
+    # h1 (i % 3 == 1) only ever t1 or none; h0 and h2 both teams in every week.
+    rows = [decision_row(i, team=None if i % 5 == 0 else ("t1" if i % 2 or i % 3 == 1 else "t2"))
             for i in range(400)]  # fmt: skip
     rows += [decision_row(i, handler="h9", team=None) for i in range(400, 460)]  # no team
     write_csv(tmp_path / "d.csv", rows)

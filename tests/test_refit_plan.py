@@ -16,7 +16,8 @@ import numpy as np
 import pytest
 
 from monitor.config import Config
-from monitor.refit.plan import covering_ends, day_number
+from monitor.refit.plan import covering_ends
+from monitor.refit.stretches import day_number
 from monitor.stats.moments import Moments, group_sums, moments_from_rows
 
 
@@ -169,3 +170,49 @@ def test_window_sums_keep_a_constant_cue_exactly_constant():
     all_rows, linked = layout.finish(got, np.array([[0.25, 0.0, 0.0]]))
     assert all_rows.comoment[0, 0, 0] == 0.0 and linked.comoment[0, 0, 0] == 0.0
     assert all_rows.mean[0, 0] == pytest.approx(0.3, rel=1e-15)
+
+
+@pytest.mark.parametrize(
+    ("length", "step", "origin"),
+    [(90, 7, "2024-01-01"), (91, 7, "2023-12-28"), (12, 5, "2024-03-02"), (30, 1, "2024-01-01"),
+     (30, 14, "2022-06-06"), (28, 7, "2024-01-05"), (90, 30, "2021-02-03")],
+)  # fmt: skip
+def test_stretches_are_the_days_between_window_boundaries(length, step, origin):
+    """A bucket's stretch (``refit.stretches``) against its definition, enumerated here
+    (common practice: a brute-force check of a closed form): it starts on the greatest
+    window boundary - an aligned window's first day or the day after an aligned end - on
+    or before the day; numpy, DuckDB's SQL and the stored JSON agree; no aligned window
+    holds part of a stretch."""
+    import duckdb
+
+    from monitor.refit.plan import aligned_ends
+    from monitor.refit.stretches import Stretches
+
+    config = Config.model_validate(
+        {
+            "store": {"path": "x.duckdb"},
+            "decisions": {"id": "i", "decided_at": "t", "decision_maker": "w", "judgment": "y"},
+            "cues": {"a": {"type": "numeric"}},
+            "windows": {"length_days": length, "step_days": step, "origin": origin},
+        }
+    )
+    st = Stretches.of(config)
+    assert Stretches.from_json(st.to_json()) == st
+    o = day_number(date.fromisoformat(origin))
+    days = np.arange(o - 500, o + 500)
+    ends = o + step * np.arange(-1000, 1000)
+    bounds = np.unique(np.concatenate([ends + 1, ends - length + 1]))
+    want = bounds[np.searchsorted(bounds, days, side="right") - 1]
+    assert np.array_equal(st.start(days), want)
+    first = np.unique(want)
+    assert np.array_equal(st.last(first)[:-1], first[1:] - 1)
+    assert np.all(st.last(first) - first < step)
+    sql = (
+        f"SELECT ({st.sql('x')} - DATE '1970-01-01')::BIGINT FROM (SELECT DATE '1970-01-01' "
+        f"+ i::INTEGER AS x FROM range({o - 500}, {o + 500}) t(i)) ORDER BY x"
+    )
+    assert np.array_equal(np.array([r[0] for r in duckdb.sql(sql).fetchall()]), want)
+    for end in aligned_ends(config, o - 300, o + 300):
+        inside = (days >= end - length + 1) & (days <= end)
+        # A stretch is inside the window exactly when its first day is.
+        assert np.array_equal(inside, (want >= end - length + 1) & (want <= end))

@@ -1,5 +1,5 @@
 """Bucket statistics in Spark: the shifted sums of ``refit.buckets.StatLayout`` per
-(decision-maker, day), computed where the rows are, collected as Arrow (only the
+(decision-maker, stretch of days), computed where the rows are, collected as Arrow (only the
 buckets travel), and laid out as the store's ``bucket_stats`` rows.
 
 Shifts (``bucket_shifts``): a decision-maker already in the store keeps theirs (sent to
@@ -16,6 +16,7 @@ import numpy as np
 
 from monitor.config import Config
 from monitor.refit.buckets import StatLayout
+from monitor.refit.stretches import Stretches
 
 # 2^33 + 1: Veltkamp's split, as ``refit.buckets._SPLIT``.
 _SPLIT = 8589934593.0
@@ -29,9 +30,10 @@ def _F():
 
 
 def design(config: Config, accepted, names: dict[str, str]):
-    """(decision_maker, day number, team, x0..x(k-1), judgment) of the accepted
-    decisions: categorical cues as one 0/1 column per non-reference level, in
-    ``config.design_columns()`` order."""
+    """(decision_maker, bucket day, team, x0..x(k-1), judgment) of the accepted
+    decisions: the bucket day is the day number of the first day of the decision's
+    stretch (``refit.stretches``), categorical cues one 0/1 column per non-reference
+    level, in ``config.design_columns()`` order."""
     F = _F()
     xs = []
     for name, cue in config.cues.items():
@@ -42,7 +44,12 @@ def design(config: Config, accepted, names: dict[str, str]):
         else:
             xs.append(col.cast("double"))
     xs.append(F.col(names["value"]).cast("double"))
-    day = F.datediff(F.to_date(F.col(names["time"])), F.lit("1970-01-01").cast("date"))
+    n = F.datediff(F.to_date(F.col(names["time"])), F.lit("1970-01-01").cast("date"))
+    st = Stretches.of(config)
+    back = F.least(
+        F.pmod(n - st.after_end, F.lit(st.step)), F.pmod(n - st.at_start, F.lit(st.step))
+    )
+    day = n - back
     team = F.col(names["team"]) if "team" in names else F.lit(None).cast("string")
     return accepted.select(
         F.col(names["id"]).alias("_did"),

@@ -31,6 +31,7 @@ from dataclasses import dataclass
 import numpy as np
 
 from monitor.config import Config
+from monitor.refit.stretches import Stretches, day_number, from_day_number
 from monitor.stats.limits import RAW_REFIT_CANCELLATION
 from monitor.stats.moments import Moments
 from monitor.store.rules import current_outcome_sql
@@ -239,32 +240,35 @@ def _in_buckets(
 
 
 def full_sql(config: Config, only: str | None = None, day_range: tuple | None = None) -> str:
-    """Every stored decision's bucket statistics: per (decision_maker, day) one row with
-    ``linked_only`` false (all the day's decisions; criterion entries 0) and one with
-    ``linked_only`` true (the decisions with a current outcome).  Returns
-    decision_maker, day, linked_only, team (max) and ``sums`` DOUBLE[set_width].
-    ``only``: a table of (decision_maker, day) buckets to compute instead of all;
-    ``day_range`` (first, last day of those buckets) lets DuckDB skip the row groups of
-    other days.
+    """Every stored decision's bucket statistics: per (decision_maker, stretch) one row
+    with ``linked_only`` false (all the stretch's decisions; criterion entries 0) and
+    one with ``linked_only`` true (the decisions with a current outcome).  Returns
+    decision_maker, day (the stretch's first day, ``plan.Stretches``), linked_only, team
+    (max) and ``sums`` DOUBLE[set_width].  ``only``: a table of (decision_maker, day)
+    buckets to compute instead of all; ``day_range`` (first, last bucket day of those)
+    lets DuckDB skip the row groups of other days.
 
     The all-rows set needs no outcome: it is summed from the decisions alone, and only
     the linked set joins the current outcomes (an inner join over the outcomes).  Plain
     ``sum``, not ``fsum``: the rows are shifted to near zero first and the thread-count
     test (1 vs 4 threads, 1e-12 relative) holds with it."""
     p = len(config.design_columns()) + 2
+    stretches = Stretches.of(config)
+    bday = stretches.sql("d.decided_day")
     present = _cues_present(config)
     outcomes = current_outcome_sql()
     if only is not None:
         if day_range is not None:
-            lo, hi = (lit(str(d)) for d in day_range)
+            lo = lit(str(day_range[0]))
+            hi = lit(str(_stretch_last(stretches, day_range[1])))
             present += f" AND d.decided_day BETWEEN {lo}::DATE AND {hi}::DATE"
-        present += f" AND {_in_buckets(only)}"
+        present += f" AND {_in_buckets(only, bday)}"
         outcomes = current_outcome_sql(
             decision_filter=f"decision_id IN (SELECT d.decision_id FROM decisions d WHERE {present})"
         )
-    every = f"SELECT d.*, d.decided_day AS _bday, NULL::DOUBLE AS _crit FROM decisions d WHERE {present}"
+    every = f"SELECT d.*, {bday} AS _bday, NULL::DOUBLE AS _crit FROM decisions d WHERE {present}"
     linked = (
-        "SELECT d.*, d.decided_day AS _bday, o.criterion AS _crit "
+        f"SELECT d.*, {bday} AS _bday, o.criterion AS _crit "
         f"FROM ({outcomes}) o JOIN decisions d USING (decision_id) WHERE {present}"
     )
     return (
@@ -276,8 +280,13 @@ def full_sql(config: Config, only: str | None = None, day_range: tuple | None = 
     )
 
 
-def recompute_sql(through_batch: int, day_range: tuple | None) -> str:
-    """SELECT DISTINCT (decision_maker, day) of the buckets the batches after
+def _stretch_last(stretches: Stretches, first_day):
+    """The last day (a date) of the stretch starting on ``first_day`` (a date)."""
+    return from_day_number(int(stretches.last([day_number(first_day)])[0]))
+
+
+def recompute_sql(config: Config, through_batch: int, day_range: tuple | None) -> str:
+    """SELECT DISTINCT (decision_maker, day: the stretch's first day) of the buckets the batches after
     ``through_batch`` take something out of: the buckets of decision versions in the
     stored sums that a correction or retraction replaced, and of stored decisions whose
     current outcome was replaced by a correction.  These are summed again from their
@@ -285,14 +294,15 @@ def recompute_sql(through_batch: int, day_range: tuple | None) -> str:
     sum leaves its rounding behind, and after an absurd value that rounding is larger
     than everything else in the bucket."""
     b = int(through_batch)
+    bday = Stretches.of(config).sql("decided_day")
     in_range = "TRUE"
     if day_range is not None:
         lo, hi = (lit(str(d)) for d in day_range)
         in_range = f"d.decided_day BETWEEN {lo}::DATE AND {hi}::DATE"
     return (
-        "SELECT DISTINCT decision_maker, decided_day AS day FROM superseded_decisions "
+        f"SELECT DISTINCT decision_maker, {bday} AS day FROM superseded_decisions "
         f"WHERE superseded_batch > {b} AND batch_id <= {b} UNION "
-        "SELECT d.decision_maker, d.decided_day FROM decisions d "
+        f"SELECT d.decision_maker, {bday} FROM decisions d "
         f"WHERE d.batch_id <= {b} AND {in_range} "
         f"AND d.decision_id IN (SELECT decision_id FROM outcomes WHERE batch_id > {b}) "
         f"AND d.decision_id IN (SELECT decision_id FROM outcomes WHERE batch_id <= {b})"
@@ -313,7 +323,7 @@ def delta_sql(config: Config, through_batch: int, day_range: tuple | None, skip:
     Nothing is subtracted: the buckets something leaves (``recompute_sql``, the table
     ``skip``) are left out here and summed again from their rows by the caller.
 
-    ``day_range`` (first, last day of the touched buckets, from ``dirty_buckets``)
+    ``day_range`` (first, last decision day touched, from ``dirty_buckets``)
     lets DuckDB skip the row groups of older decisions when looking up the decisions
     of new outcomes: the lookup then costs the same whatever the length of history.
     """
@@ -325,7 +335,8 @@ def delta_sql(config: Config, through_batch: int, day_range: tuple | None, skip:
         lo, hi = (lit(str(d)) for d in day_range)
         in_range = f"d.decided_day BETWEEN {lo}::DATE AND {hi}::DATE"
     # Names of our own start with "_": cue names start with a letter, so none collide.
-    cols = "d.decision_maker, d.decided_day AS _bday, d.team, d.judgment, " + ", ".join(
+    bday = Stretches.of(config).sql("d.decided_day")
+    cols = f"d.decision_maker, {bday} AS _bday, d.team, d.judgment, " + ", ".join(
         f"d.{qi(c)}" for c in config.cues
     )
     new_dec = f"SELECT d.* FROM decisions d WHERE d.batch_id > {b} AND {present}"

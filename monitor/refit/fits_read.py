@@ -10,8 +10,9 @@ import numpy as np
 
 from monitor.cautions import CAUTION, LINEAR_PROBABILITY_NOTE, LINKED_OUTCOMES_NOTE
 from monitor.config import Config
+from monitor.refit.stretches import STRETCHES_FACT, Stretches, day_number, from_day_number
 from monitor.stats.lens import LENS_FIGURES
-from monitor.store.connection import Store
+from monitor.store.connection import Store, get_fact
 from monitor.store.rules import quote_ident
 
 if TYPE_CHECKING:
@@ -138,6 +139,7 @@ def data_spans(con) -> dict[tuple[str, str], tuple[date, date]]:
     import pandas as pd
 
     sql = _DATA_SPAN_SQL
+    stretch_end = None
     if (
         not con.execute("SELECT count(*) FROM (SELECT 1 FROM decisions LIMIT 1)").fetchone()[0]
         and con.execute(
@@ -145,15 +147,23 @@ def data_spans(con) -> dict[tuple[str, str], tuple[date, date]]:
         ).fetchone()[0]
     ):
         # A store fed from a data lake ([lake]) holds buckets, not decisions: a bucket is
-        # a (decision-maker, day) with decisions, its team the largest of its rows'.
+        # a (decision-maker, stretch of days) with decisions, its team the largest of its
+        # rows'.  The span is then known to the stretch: from the first bucket's first
+        # day to the last bucket's last day.
         sql = sql.replace("decided_day", "day").replace(
             "FROM decisions", "FROM (SELECT * FROM bucket_stats WHERE NOT linked_only)"
         )
-    return {
-        (r.scope, r.key): (pd.Timestamp(r.first_day).date(), pd.Timestamp(r.last_day).date())
-        for r in con.execute(sql).df().itertuples(index=False)
-        if not pd.isna(r.first_day)
-    }
+        known = get_fact(con, STRETCHES_FACT)
+        stretch_end = None if known is None else Stretches.from_json(known).last
+    spans = {}
+    for r in con.execute(sql).df().itertuples(index=False):
+        if pd.isna(r.first_day):
+            continue
+        last = pd.Timestamp(r.last_day).date()
+        if stretch_end is not None:
+            last = from_day_number(int(stretch_end([day_number(last)])[0]))
+        spans[(r.scope, r.key)] = (pd.Timestamp(r.first_day).date(), last)
+    return spans
 
 
 def held_days(start: date, end: date, span: tuple[date, date] | None) -> tuple[date, date, bool]:

@@ -3,7 +3,7 @@ streamed out of DuckDB as Arrow record batches, and written to the store once.
 
 Decision-makers and teams come out of DuckDB as ENUM codes (their ids sorted as DuckDB
 sorts them, so a team's code is its rank and ``max(team)`` of a bucket is the largest
-code), day numbers as integers, the design columns and the judgment as DOUBLE and the
+code), day numbers as integers (mapped to their stretch's first day here), the design columns and the judgment as DOUBLE and the
 current outcome's criterion as DOUBLE with NaN for none.  The windows are then computed
 from the in-memory buckets (no read back).
 """
@@ -18,6 +18,7 @@ from monitor.refit.buckets import StatLayout, design_expressions
 from monitor.refit.fits_write import insert_arrow
 from monitor.refit.kernel import BucketAccumulator
 from monitor.refit.plan import Buckets, latest_teams
+from monitor.refit.stretches import Stretches
 from monitor.store.rules import current_outcome_sql
 from monitor.store.rules import quote_ident as qi
 from monitor.store.rules import sql_literal as lit
@@ -72,7 +73,10 @@ def sum_buckets(con, config: Config, layout: StatLayout) -> Buckets | None:
         f"FROM decisions d LEFT JOIN ({current_outcome_sql()}) o USING (decision_id) "
         f"WHERE {present}"
     )
-    acc = BucketAccumulator(len(makers), p, int(lo), int(hi), float(crit_ref), int(n_rows))
+    # Each day number -> its stretch's first day (``stretches``), looked up per batch.
+    bucket_of = Stretches.of(config).start(np.arange(int(lo), int(hi) + 1)).astype(np.int32)
+    first = int(bucket_of[0])
+    acc = BucketAccumulator(len(makers), p, first, int(hi), float(crit_ref), int(n_rows))
     reader = con.sql(sql).to_arrow_reader(BATCH_ROWS)
     try:
         for batch in reader:
@@ -81,7 +85,7 @@ def sum_buckets(con, config: Config, layout: StatLayout) -> Buckets | None:
             cols = tuple(_readonly(batch.column(3 + i)) for i in range(p - 1))
             acc.add(
                 _codes(batch.column(0)),
-                batch.column(1).to_numpy(),
+                bucket_of[batch.column(1).to_numpy() - int(lo)],
                 _codes(batch.column(2)),
                 cols,
                 _readonly(batch.column(2 + p)),

@@ -1,34 +1,26 @@
 """Which windows to fit and their statistics: the aligned window ends, each
-decision-maker's window sums from their day buckets, and the pooled team and all
-windows.
+decision-maker's window sums from their buckets, and the pooled team and all windows.
 
 Windows are ``length_days`` long and end every ``step_days`` days on dates aligned
 to ``windows.origin``; a window ending on E covers the days E-length+1 .. E.
+
+A bucket holds one decision-maker's decisions of one stretch of days
+(``stretches.Stretches``), named by the stretch's first day.
 """
 
 from __future__ import annotations
 
 from dataclasses import dataclass
-from datetime import date, timedelta
+from datetime import date
 
 import numpy as np
 
 from monitor.config import Config
 from monitor.refit.buckets import StatLayout
+from monitor.refit.stretches import day_number
 from monitor.stats.moments import Moments, group_sums
 
-EPOCH = date(1970, 1, 1)
 ALL_KEY = "all"
-
-
-def day_number(d: date) -> int:
-    """Days since 1970-01-01."""
-    return (d - EPOCH).days
-
-
-def from_day_number(n: int) -> date:
-    """The date ``n`` days after 1970-01-01."""
-    return EPOCH + timedelta(days=int(n))
 
 
 def aligned_ends(config: Config, first_day: int, last_day: int) -> np.ndarray:

@@ -1,8 +1,9 @@
 """Bucket statistics and the rolling-window refresh (`cuewatch refit`).
 
-Per (decision-maker, day) the store keeps the sufficient statistics of that day's
-judgments (``bucket_stats``, shifted sums; see ``moments_sql``).  A decision-maker's
-window is the sum of its days' buckets; team and all windows pool the decision-makers'
+Per (decision-maker, stretch of days) the store keeps the sufficient statistics of
+those judgments (``bucket_stats``, shifted sums; see ``buckets``; a stretch lies between
+two window boundaries, ``stretches``).  A decision-maker's window is the sum of the
+buckets inside it; team and all windows pool the decision-makers'
 windows.  A refresh adds to the stored buckets what the batches since the last refit
 changed - new decisions, new outcomes (``buckets.delta_sql``) - sums again the buckets
 something left (decision corrections and retractions, outcome corrections:
@@ -46,17 +47,17 @@ from monitor.refit.plan import (
     aligned_ends,
     covering_ends,
     decision_maker_windows,
-    from_day_number,
     latest_teams,
     pooled_windows,
 )
+from monitor.refit.stretches import STRETCHES_FACT, Stretches, from_day_number
 from monitor.stats.lens import LensFits, fit_lens_or_rows
 from monitor.store.connection import Store, get_fact, set_fact
 from monitor.store.rules import quote_ident, utc_now
 from monitor.store.schema import drop_temp_tables, replace_bucket_tables, stage_temp_table
 
 SCOPES = ("decision_maker", "team", "all")
-BUCKET_LAYOUT = "shifted-array-3"
+BUCKET_LAYOUT = "shifted-array-4-stretches"
 # DuckDB memory bound once the bucket SQL is done (it spills beyond it, never fails).
 AFTER_SQL_MEMORY_LIMIT = "256MB"
 # store_facts key: every batch up to this id is in the stored bucket statistics.
@@ -74,6 +75,10 @@ def design_signature(config: Config) -> str:
     # The bucket_stats layout (StatLayout): a store written with another layout is
     # rebuilt by a full refit instead of failing on a missing column.
     doc["__bucket_layout__"] = BUCKET_LAYOUT
+    # Buckets are summed over stretches between window boundaries: other windows, other
+    # stretches (``refit.stretches``).
+    w = config.windows
+    doc["__stretches__"] = [w.length_days, w.step_days, w.origin]
     return hashlib.sha256(json.dumps(doc, sort_keys=True).encode()).hexdigest()[:16]
 
 
@@ -371,6 +376,7 @@ def _refit_full(con, config: Config, sig: str, lake=None) -> RefitSummary:
             fitted += fitted_n
             refitted += refit_n
     set_fact(con, "design_signature", sig)
+    set_fact(con, STRETCHES_FACT, Stretches.of(config).to_json())
     set_fact(con, THROUGH_BATCH, str(newest_batch))
     set_fact(con, "last_refit", utc_now().isoformat())
     return RefitSummary("full", n_dirty, n_buckets, fitted, refitted, 0.0)
@@ -412,7 +418,7 @@ def _fetch_delta(
     the buckets summed again."""
     row = con.execute("SELECT min(day), max(day) FROM dirty_buckets").fetchall()[0]
     day_range = None if row[0] is None else (row[0], row[1])
-    stage_temp_table(con, _RESUM, recompute_sql(through, day_range))
+    stage_temp_table(con, _RESUM, recompute_sql(config, through, day_range))
     try:
         # Most nights nothing leaves a bucket (no corrections): then the re-sum, which
         # scans the decisions and outcomes to find no row (0.4 s at 5M rows), is skipped.
