@@ -1,6 +1,6 @@
 """Sufficient statistics of the judgment log computed inside DuckDB.
 
-Per (decision-maker, day) bucket the store keeps two statistic sets over the model
+Per (decision-maker, stretch of days) bucket the store keeps two statistic sets over the model
 vector z = (x_1 .. x_k, Ys, Ye), each as one fixed-size array of *shifted sums*
 (``StatLayout``) in its own ``bucket_stats`` row:
 
@@ -14,8 +14,8 @@ Why this shape: plain sums of cross-products lose digits when cues have large me
 ``c`` (``bucket_shifts``: the decision-maker's medians when first seen, cut to 20
 significant bits; a full refit takes the medians of their first ``kernel.SHIFT_ROWS`` rows)
 before its products are summed with plain ``sum``, so the summed terms are near zero.
-A full refit sums in memory with a compiled kernel (``refit.kernel``); ``full_sql`` is the
-reference it is tested against and what a nightly refit sums buckets again with.  A median, not a mean: one extreme value cannot drag the reference away
+A full refit, and a nightly one summing buckets again, sum in memory with a compiled
+kernel (``refit.kernel``); ``full_sql`` is the reference it is tested against.  A median, not a mean: one extreme value cannot drag the reference away
 from the rest of a person's rows, so it affects only the windows that contain it.  Because every bucket of one decision-maker shares its shift, the
 statistics of any set of that decision-maker's days are the plain sums of the buckets'
 arrays - the shifted form of the pairwise update, exact in real arithmetic - and

@@ -17,8 +17,9 @@ median of all of them, and any reference near the data keeps the digits
 (``buckets`` module docstring); computing exact medians over every row in SQL took
 longer (1.4 s at 5M rows) than all the sums.
 
-``buckets.full_sql`` stays the reference implementation (the incremental refit sums
-buckets again with it; tests compare the two).
+``buckets.full_sql`` stays the reference implementation (tests compare the two).  A
+nightly refit sums the buckets a correction leaves again with this kernel too, around
+the stored references (``known_shift``; ``full.resum_buckets``).
 """
 
 from __future__ import annotations
@@ -231,10 +232,19 @@ class BucketAccumulator:
 
     ``n_keys`` decision-makers (numbered 0..), ``p`` = design columns + 2, days in
     [first_day, last_day] (day numbers), ``crit_shift`` the criterion's reference,
-    ``max_rows`` at most this many rows will come."""
+    ``max_rows`` at most this many rows will come.  ``known_shift`` (n_keys, p): every
+    decision-maker's reference, already stored (a nightly refit's re-sum); then no row
+    is held back and ``crit_shift`` is not used."""
 
     def __init__(
-        self, n_keys: int, p: int, first_day: int, last_day: int, crit_shift: float, max_rows: int
+        self,
+        n_keys: int,
+        p: int,
+        first_day: int,
+        last_day: int,
+        crit_shift: float,
+        max_rows: int,
+        known_shift: np.ndarray | None = None,
     ):
         width = 1 + p + p * (p + 1) // 2
         self.p = p
@@ -244,6 +254,10 @@ class BucketAccumulator:
         self.shift = np.full((n_keys, p), np.nan)
         self.has_shift = np.zeros(n_keys, dtype=np.bool_)
         hold = SHIFT_ROWS
+        if known_shift is not None:
+            self.shift = np.array(known_shift, dtype=np.float64).reshape(n_keys, p)
+            self.has_shift[:] = True
+            hold = 1  # never used: every reference is known
         self.buf_v = np.empty((n_keys, hold, p - 1))
         self.buf_c = np.empty((n_keys, hold))
         self.buf_day = np.empty((n_keys, hold), dtype=np.int64)
