@@ -216,3 +216,23 @@ def test_stretches_are_the_days_between_window_boundaries(length, step, origin):
         inside = (days >= end - length + 1) & (days <= end)
         # A stretch is inside the window exactly when its first day is.
         assert np.array_equal(inside, (want >= end - length + 1) & (want <= end))
+
+
+def test_compiled_pooling_equals_group_sums():
+    """``window_kernel.pooled_moments`` (the team and all windows) against
+    ``moments.group_sums``, itself checked against numpy's ``np.cov`` above: groups in
+    any order, an empty group, members with no rows, means far from zero."""
+    from monitor.refit.window_kernel import pooled_moments
+
+    rng = np.random.default_rng(5)
+    rows, stack = _buckets(rng, 400)
+    group = rng.integers(0, 9, size=400)
+    group[group == 4] = 5  # group 4 has no member
+    want = group_sums(stack, group, 10)
+    order = np.argsort(group, kind="stable")
+    n, mean, comoment = pooled_moments(stack.n, stack.mean, stack.comoment, order, group, 10)
+    assert np.array_equal(n, want.n)
+    assert np.allclose(mean, want.mean, rtol=1e-13, atol=1e-12)
+    scale = np.abs(want.comoment).max()
+    assert np.allclose(comoment, want.comoment, rtol=1e-12, atol=1e-12 * scale)
+    assert n[4] == 0 and np.all(mean[4] == 0) and np.all(comoment[4] == 0)

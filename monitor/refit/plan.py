@@ -183,6 +183,26 @@ def decision_maker_windows(
     )
 
 
+def _pooled(windows: Moments, group: np.ndarray, n_groups: int) -> Moments:
+    """``moments.group_sums`` compiled (``window_kernel.pooled_moments``; 0.04-0.1 s ->
+    0.01 s for 22,000 windows of 12 variables)."""
+    from monitor.refit.window_kernel import pooled_moments  # numba, loaded on first use
+
+    group = np.asarray(group, dtype=np.int64)
+    if not windows.size:
+        return group_sums(windows, group, n_groups)
+    order = np.argsort(group, kind="stable")
+    n, mean, comoment = pooled_moments(
+        np.ascontiguousarray(windows.n, dtype=np.float64),
+        np.ascontiguousarray(windows.mean, dtype=np.float64),
+        np.ascontiguousarray(windows.comoment, dtype=np.float64),
+        order,
+        group,
+        int(n_groups),
+    )
+    return Moments(n, mean, comoment)
+
+
 def pooled_windows(per_dm: ScopeWindows, scope: str) -> ScopeWindows:
     """Team or all windows pooled from decision-maker windows with the same end (the
     two-pass formula, ``moments.group_sums``); a decision-maker counts in the team on
@@ -203,8 +223,8 @@ def pooled_windows(per_dm: ScopeWindows, scope: str) -> ScopeWindows:
     ends, end_ix = np.unique(src.end, return_inverse=True)
     cell = name_ix.astype(np.int64) * len(ends) + end_ix
     codes, group = np.unique(cell, return_inverse=True)
-    all_rows = group_sums(src.all_rows, group, len(codes))
-    linked = group_sums(src.linked, group, len(codes))
+    all_rows = _pooled(src.all_rows, group, len(codes))
+    linked = _pooled(src.linked, group, len(codes))
     keys = names[codes // len(ends)].astype(object)
     teams = keys if scope == "team" else np.full(len(codes), None, dtype=object)
     lost = np.zeros(len(codes), dtype=bool)

@@ -97,3 +97,46 @@ def window_sums_sorted(
         r = r1
         i = j
     return out
+
+
+@njit(cache=True, nogil=True)
+def pooled_moments(n, mean, comoment, order, group, n_groups):
+    """``moments.group_sums`` compiled (the team and all windows): the same two-pass
+    formula with the same operations, each group's members added in ``order`` (members
+    sorted by ``group``, stable), without its (m, p, p) temporaries."""
+    p = mean.shape[1]
+    out_n = np.zeros(n_groups)
+    out_mean = np.zeros((n_groups, p))
+    out_m = np.zeros((n_groups, p, p))
+    weighted = np.zeros(p)
+    d = np.empty(p)
+    size = len(order)
+    i = 0
+    while i < size:
+        g = group[order[i]]
+        j = i
+        while j < size and group[order[j]] == g:
+            j += 1
+        anchor = mean[order[i]]  # the first member's mean
+        total = 0.0
+        weighted[:] = 0.0
+        for t in range(i, j):
+            r = order[t]
+            total += n[r]
+            for a in range(p):
+                weighted[a] += (mean[r, a] - anchor[a]) * n[r]
+        out_n[g] = total
+        if total > 0:
+            for a in range(p):
+                out_mean[g, a] = anchor[a] + weighted[a] / total
+        acc = out_m[g]
+        for t in range(i, j):
+            r = order[t]
+            nr = n[r]
+            for a in range(p):
+                d[a] = mean[r, a] - out_mean[g, a]
+            for a in range(p):
+                for b in range(p):
+                    acc[a, b] += d[a] * (d[b] * nr) + comoment[r, a, b]
+        i = j
+    return out_n, out_mean, out_m
