@@ -67,6 +67,15 @@ def _entity_windows(rows, day, linked, sums, wins, first, end, d0, length, out, 
                 out[w, j] = s[bf, kf, j]
 
 
+@njit(cache=True, inline="always")
+def _run_end(key, order, i):
+    """The end of the run of equal ``key[order[.]]`` that starts at ``order[i]``."""
+    j = i
+    while j < len(order) and key[order[j]] == key[order[i]]:
+        j += 1
+    return j
+
+
 @njit(cache=True, nogil=True)
 def window_sums_sorted(
     row_ent, row_order, day, linked, sums, win_ent, win_order, first, end, d0, length, max_blocks
@@ -83,9 +92,7 @@ def window_sums_sorted(
     i = 0
     while i < m:
         e = win_ent[win_order[i]]
-        j = i
-        while j < m and win_ent[win_order[j]] == e:
-            j += 1
+        j = _run_end(win_ent, win_order, i)
         while r < n and row_ent[row_order[r]] < e:
             r += 1
         r1 = r
@@ -114,9 +121,7 @@ def pooled_moments(n, mean, comoment, order, group, n_groups):
     i = 0
     while i < size:
         g = group[order[i]]
-        j = i
-        while j < size and group[order[j]] == g:
-            j += 1
+        j = _run_end(group, order, i)
         anchor = mean[order[i]]  # the first member's mean
         total = 0.0
         weighted[:] = 0.0
