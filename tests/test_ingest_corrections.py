@@ -325,6 +325,22 @@ def test_the_audit_pack_shows_each_decision_as_it_was_known_then(tmp_path):
     h1 = next(r for r in gone if r["decision_maker"] == "h1")
     assert float(h1["change"]) == -1 and int(h1["retracted_decisions"]) == 1
     assert "1 retracted decisions" in h1["why"]
+    # Every other decision of h1 withdrawn: h1 has no row as of t4, and the restatements
+    # list each of h1's figures as moved to no value (not silently dropped).
+    left = [i for i in range(1, N, 3) if i != 7]
+    write_csv(tmp_path / "all.csv", [{"case_id": f"c{i:06d}", "change": "retract"} for i in left],
+              COLUMNS)  # fmt: skip
+    ingest_json(cfg, "--kind", "decisions", str(tmp_path / "all.csv"))
+    t4 = _now()
+    _export(cfg, tmp_path / "c34", "--compare-as-of", t3, t4)
+    emptied = [r for r in _read(tmp_path / "c34" / "restatements.csv")
+               if r["table"] == "decision_makers" and r["decision_maker"] == "h1"]  # fmt: skip
+    by_figure = {r["figure"]: r for r in emptied}
+    assert by_figure["n_decisions"]["value_before"] == "49"
+    assert by_figure["n_decisions"]["value_after"] == ""
+    assert int(by_figure["n_decisions"]["retracted_decisions"]) == len(left)
+    assert f"{len(left)} retracted decisions" in by_figure["n_decisions"]["why"]
+    assert {"n_decisions", "R_s"} <= set(by_figure)
     # The pack as of t1 is rebuilt the same after the changes.
     _export(cfg, tmp_path / "t1again", "--as-of", t1, "--include-rows", "h0")
     for name in ("decision_makers.csv", "cue_weights.csv", "decision_rows.csv"):

@@ -187,49 +187,63 @@ def _changes(
 
 
 def restatement_table(before, after) -> Table:
-    """Every compared figure whose value moved between two snapshots, and why."""
+    """Every compared figure whose value moved between two snapshots, and why.  A row
+    that the later snapshot no longer has (every decision of a person retracted, say)
+    is listed with each of its figures moved to no value."""
     old_q = before.rows.frame[before.rows.in_quarter]
     new_q = after.rows.frame[after.rows.in_quarter].reset_index(drop=True)
     old_q = old_q.reset_index(drop=True)
     was = {(s, k): m for s, k, _, m in groups_of(old_q)}
     why = {(s, k): _changes(old_q, new_q, m, was.get((s, k))) for s, k, _, m in groups_of(new_q)}
+    nowhere = np.zeros(len(new_q), dtype=bool)
+    for key, m in was.items():  # groups with no row left
+        if key not in why:
+            why[key] = _changes(old_q, new_q, nowhere, m)
     t_old = {t.name: t for t in before.tables}
     out = []
+
+    def moved(table: str, row: dict, prev: dict, figures) -> None:
+        scope = row.get("scope", "decision_maker")
+        c = why.get((scope, row["decision_maker"]), {})
+        for fig in figures:
+            v0, v1 = prev.get(fig), row.get(fig)
+            if v0 == v1:
+                continue
+            num = [None if v is None else float(v) for v in (v0, v1)]
+            change = None if None in num else clean_float(num[1] - num[0])
+            text = ", ".join(f"{n} {w.replace('_', ' ')}" for w, n in c.items() if n)
+            out.append(
+                (
+                    table,
+                    scope,
+                    row["decision_maker"],
+                    row.get("cue"),
+                    fig,
+                    num[0],
+                    num[1],
+                    change,
+                    c.get("newly_linked", 0),
+                    c.get("corrected_outcomes", 0),
+                    c.get("late_decisions", 0),
+                    c.get("corrected_decisions", 0),
+                    c.get("retracted_decisions", 0),
+                    text or "no row-level change found",
+                )
+            )
+
     for t in after.tables:
         if t.name not in _COMPARED or t.name not in t_old:
             continue
         keys, figures = _COMPARED[t.name]
         old = {tuple(r[k] for k in keys): r for r in t_old[t.name].records()}
+        kept = set()
         for r in t.records():
             key = tuple(r[k] for k in keys)
-            prev = old.get(key, {})
-            scope = r.get("scope", "decision_maker")
-            c = why.get((scope, r["decision_maker"]), {})
-            for fig in figures:
-                v0, v1 = prev.get(fig), r[fig]
-                if v0 == v1:
-                    continue
-                num = [None if v is None else float(v) for v in (v0, v1)]
-                change = None if None in num else clean_float(num[1] - num[0])
-                text = ", ".join(f"{n} {w.replace('_', ' ')}" for w, n in c.items() if n)
-                out.append(
-                    (
-                        t.name,
-                        scope,
-                        r["decision_maker"],
-                        r.get("cue"),
-                        fig,
-                        num[0],
-                        num[1],
-                        change,
-                        c.get("newly_linked", 0),
-                        c.get("corrected_outcomes", 0),
-                        c.get("late_decisions", 0),
-                        c.get("corrected_decisions", 0),
-                        c.get("retracted_decisions", 0),
-                        text or "no row-level change found",
-                    )
-                )
+            kept.add(key)
+            moved(t.name, r, old.get(key, {}), figures)
+        for key, prev in old.items():
+            if key not in kept:  # the row is gone: its figures now have no value
+                moved(t.name, {k: prev[k] for k in keys}, prev, figures)
     cols = spec(
         "table:str scope:str decision_maker:str cue:str figure:str value_before:number "
         "value_after:number change:number newly_linked:int corrected_outcomes:int late_decisions:int "

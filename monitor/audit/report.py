@@ -121,7 +121,8 @@ def methodology_text(
             "- restatements: every compared figure whose value differs between the two as-of",
             "  times, with the row-level reasons found for that group: outcomes newly linked,",
             "  outcomes corrected (a later version with a different value), decisions",
-            "  ingested late.",
+            "  ingested late, corrected or retracted.  A row the later time no longer has",
+            "  (every decision of a person retracted) is listed with no value after.",
         ]
     parts += ["", *operating_characteristics_lines(config)]
     parts += [
