@@ -3,9 +3,11 @@ streamed out of DuckDB as Arrow record batches, and written to the store once.
 
 Decision-makers and teams come out of DuckDB as ENUM codes (their ids sorted as DuckDB
 sorts them, so a team's code is its rank and ``max(team)`` of a bucket is the largest
-code), day numbers as integers (mapped to their stretch's first day here), the design columns and the judgment as DOUBLE and the
-current outcome's criterion as DOUBLE with NaN for none.  The windows are then computed
-from the in-memory buckets (no read back).
+code), day numbers as integers (mapped to their stretch's first day here), the design
+columns and the judgment as DOUBLE and the current outcome's criterion as DOUBLE with NaN
+for none.  The windows are then computed from the in-memory buckets (no read back).
+``resum_buckets`` streams the rows of chosen buckets through the same kernel for a
+nightly refit.
 """
 
 from __future__ import annotations
