@@ -17,7 +17,7 @@ import pytest
 from monitor.config import Config, load_config
 from monitor.refit import full, kernel
 from monitor.refit import windows as refit_windows
-from monitor.refit.buckets import full_sql
+from monitor.refit.buckets import full_sql, stored_shifts
 from monitor.refit.plan import Buckets, aligned_ends, latest_teams
 
 
@@ -34,9 +34,7 @@ def _sql_buckets(con, config: Config) -> Buckets:
     """The buckets as the SQL path sums them around the stored references."""
     layout = refit_windows._layout(config)
     rows = refit_windows._fetch_rows(con, layout, full_sql(config))
-    table = con.sql("SELECT decision_maker, shift FROM bucket_shifts ORDER BY 1").to_arrow_table()
-    keys = np.array(table.column(0).to_pylist(), dtype=object)
-    shift = refit_windows._array_rows(table.column(1), layout.p_linked)
+    keys, shift = stored_shifts(con, layout.p_linked)
     teams = latest_teams(len(keys), rows["ent"], rows["day"], rows["team"], rows["team_code"])
     return Buckets(keys, shift, teams, rows["ent"], rows["day"], rows["linked"],
                    rows["team"], rows["sums"])  # fmt: skip

@@ -33,8 +33,13 @@ from monitor.config import Config
 from monitor.errors import UserError
 from monitor.lake import records, sums
 from monitor.lake.session import spark_session
-from monitor.refit.buckets import StatLayout
-from monitor.refit.fits_write import insert_arrow
+from monitor.refit.buckets import StatLayout, stored_shifts
+from monitor.refit.fits_write import (
+    delete_buckets,
+    insert_arrow,
+    insert_bucket_rows,
+    insert_bucket_shifts,
+)
 from monitor.refit.plan import Buckets, latest_teams
 from monitor.store.rules import clock_kind, utc_now
 
@@ -115,6 +120,35 @@ def _with_runs(spark, frame, runs: list[tuple]):
     return frame.join(F.broadcast(table), cond, "inner").drop("_after", "_through", "_hmicros")
 
 
+def _settled(spark, config: Config, frames: dict, cache: bool = False):
+    """The record checks and duplicate rules applied to the frames of ``_with_runs``:
+    (settled decisions, settled outcomes or None, the accepted decisions, the current
+    outcome per decision as (_oid, _crit)).  ``cache``: keep the settled frames (the
+    caller counts and writes from them, then unpersists)."""
+    from pyspark.sql import functions as F
+
+    earliest = config.ingest.earliest
+    settled_d = records.settle_decisions(
+        config, records.check(config, "decisions", frames["decisions"], earliest=earliest)
+    )
+    if cache:
+        settled_d = settled_d.cache()
+    accepted = settled_d.filter(F.col("reason").isNull() & ~F.col("duplicate"))
+    if frames.get("outcomes") is None:
+        return settled_d, None, accepted, spark.createDataFrame([], "_oid string, _crit double")
+    names = records.parsed_names(config, "decisions")
+    dec = accepted.select(
+        F.col(names["id"]).alias("_did"), F.col(names["time"]).alias("_dat"),
+        F.col("_run").alias("_drun"),
+    )  # fmt: skip
+    settled_o = records.settle_outcomes(
+        config, records.check(config, "outcomes", frames["outcomes"], earliest=earliest), dec
+    )
+    if cache:
+        settled_o = settled_o.cache()
+    return settled_d, settled_o, accepted, records.current_outcomes(config, settled_o)
+
+
 def _micros(ts) -> int:
     return int(ts.timestamp() * 1_000_000)
 
@@ -137,7 +171,7 @@ class LakeSource:
         from pyspark.sql import functions as F
 
         config = self.config
-        if con.execute("SELECT count(*) FROM decisions").fetchone()[0]:
+        if con.execute("SELECT count(*) FROM decisions").fetchall()[0][0]:
             raise StoreHoldsRows(
                 "the store holds decisions ingested from files and [lake] is configured: "
                 "use a store of its own for the lake."
@@ -165,7 +199,7 @@ class LakeSource:
             runs = [(b, a, t, _micros(h)) for b, a, t, h in stored[kind]]
             prev = runs[-1][2] if runs else None
             if top is not None and (prev is None or top > prev):
-                batch_id = int(con.execute("SELECT nextval('batch_ids')").fetchone()[0])
+                batch_id = int(con.execute("SELECT nextval('batch_ids')").fetchall()[0][0])
                 new_runs[kind] = (batch_id, prev, int(top))
                 runs.append((batch_id, prev, int(top), _micros(horizon)))
             frames[kind] = _with_runs(spark, raw, runs) if runs else None
@@ -174,25 +208,8 @@ class LakeSource:
         if frames["decisions"] is None:  # an empty lake: nothing to sum
             self._full = None
             return full
-        checked_d = records.check(
-            config, "decisions", frames["decisions"], earliest=config.ingest.earliest
-        )
-        settled_d = records.settle_decisions(config, checked_d).cache()
+        settled_d, settled_o, accepted, current = _settled(spark, config, frames, cache=True)
         names = records.parsed_names(config, "decisions")
-        accepted = settled_d.filter(F.col("reason").isNull() & ~F.col("duplicate"))
-        settled_o = current = None
-        if frames.get("outcomes") is not None:
-            dec = accepted.select(
-                F.col(names["id"]).alias("_did"), F.col(names["time"]).alias("_dat"),
-                F.col("_run").alias("_drun"),
-            )  # fmt: skip
-            checked_o = records.check(
-                config, "outcomes", frames["outcomes"], earliest=config.ingest.earliest
-            )
-            settled_o = records.settle_outcomes(config, checked_o, dec).cache()
-            current = records.current_outcomes(config, settled_o)
-        else:
-            current = spark.createDataFrame([], "_oid string, _crit double")
         try:
             settled = {"decisions": settled_d, "outcomes": settled_o}
             counts = {k: self._write_quarantine(settled[k], k, new_runs[k]) for k in new_runs}
@@ -297,12 +314,12 @@ class LakeSource:
         for more in parts[1:]:
             dirty = dirty.unionByName(more)
         dirty = dirty.distinct()
-        keys = dirty.toArrow()
+        marked = dirty.toArrow()
         self._dirty = list(
-            zip(keys.column("dm").to_pylist(), keys.column("day").to_pylist(), strict=True)
+            zip(marked.column("dm").to_pylist(), marked.column("day").to_pylist(), strict=True)
         )
-        stored = con.execute("SELECT decision_maker, shift FROM bucket_shifts").fetchall()
-        known = {k: np.asarray(v, dtype=float) for k, v in stored}
+        keys, shift = stored_shifts(con, layout.p_linked)
+        known = dict(zip(keys, shift, strict=True))
         dirty_frame = spark.createDataFrame(self._dirty, "dm string, day int")
         mine = rows.join(F.broadcast(dirty_frame), ["dm", "day"])
         known_frame = spark.createDataFrame([(k,) for k in known], "decision_maker string")
@@ -333,16 +350,12 @@ class LakeSource:
         number = {k: i for i, k in enumerate(keys)}
         ent = np.array([number[d] for d in got["dm"]], dtype=np.int64)
         order = np.lexsort((ent, got["day"]))
-        ent, day = ent[order], got["day"][order]
-        nb = len(ent)
-        pair = got["sums"][order].reshape(2 * nb, layout.set_width)
-        row_team = np.empty(2 * nb, dtype=object)
-        row_team[0::2] = got["team_all"][order]
-        row_team[1::2] = got["team_linked"][order]
-        ent2, day2 = np.repeat(ent, 2), np.repeat(day, 2)
+        ent = ent[order]
+        day2, linked2, row_team, pair = _two_rows({k: v[order] for k, v in got.items()}, layout)
+        ent2 = np.repeat(ent, 2)
         shift = np.stack([self._shifts[k] for k in keys])
         return Buckets(keys, shift, latest_teams(len(keys), ent2, day2, row_team, _rank(row_team)),
-                       ent2, day2, np.tile(np.array([False, True]), nb), row_team, pair)  # fmt: skip
+                       ent2, day2, linked2, row_team, pair)  # fmt: skip
 
     def resummed(self, con, layout: StatLayout, numbered_sql: str):
         """Write the buckets summed again (and the new decision-makers' shifts) to the
@@ -359,34 +372,17 @@ class LakeSource:
             return empty, np.zeros(0, np.int64), np.zeros(0, np.int64)
         if self._shifts:
             keys = sorted(self._shifts)
-            insert_arrow(con, "bucket_shifts", pa.table({
-                "decision_maker": pa.array(keys, pa.string()),
-                "shift": pa.FixedSizeListArray.from_arrays(
-                    pa.array(np.concatenate([self._shifts[k] for k in keys])), layout.p_linked),
-            }))  # fmt: skip
+            insert_bucket_shifts(con, keys, np.stack([self._shifts[k] for k in keys]))
         gone = pa.table({
             "decision_maker": pa.array(list(got["dm"]), pa.string()),
             "day": pa.array(got["day"].astype(np.int32)).cast(pa.date32()),
         })  # fmt: skip
+        keys, ent = np.unique(np.asarray(got["dm"], dtype=str), return_inverse=True)
+        day2, linked2, team2, sums2 = _two_rows(got, layout)
         con.register("_lake_resummed", gone)
         try:
-            con.execute(
-                "DELETE FROM bucket_stats b USING _lake_resummed r "
-                "WHERE b.decision_maker = r.decision_maker AND b.day = r.day"
-            )
-        finally:
-            con.unregister("_lake_resummed")
-        nb = len(got["day"])
-        data = pa.table({
-            "decision_maker": pa.array(list(np.repeat(got["dm"], 2)), pa.string()),
-            "day": pa.array(np.repeat(got["day"], 2).astype(np.int32)).cast(pa.date32()),
-            "linked_only": pa.array(np.tile(np.array([False, True]), nb)),
-            "team": pa.array([t for pair in zip(got["team_all"], got["team_linked"], strict=True) for t in pair], pa.string()),
-            "sums": pa.FixedSizeListArray.from_arrays(pa.array(got["sums"].reshape(-1)), w),
-        })  # fmt: skip
-        insert_arrow(con, "bucket_stats", data, where="NOT linked_only OR sums[1] > 0")
-        con.register("_lake_resummed", gone)
-        try:
+            delete_buckets(con, "_lake_resummed")
+            insert_bucket_rows(con, keys, np.repeat(ent, 2), day2, linked2, team2, sums2)
             again = con.execute(
                 "SELECT k.ent, (r.day - DATE '1970-01-01')::BIGINT FROM _lake_resummed r "
                 f"JOIN {numbered_sql} k USING (decision_maker)"
@@ -395,6 +391,16 @@ class LakeSource:
             con.unregister("_lake_resummed")
         ent, day = (np.asarray(v, dtype=np.int64) for v in again.values())
         return empty, ent, day
+
+
+def _two_rows(got: dict, layout: StatLayout):
+    """``sums.collect_sets``'s buckets as the store's two rows each (all rows, then the
+    linked rows): (day, linked_only, team, sums (2 nb, set_width))."""
+    nb = len(got["day"])
+    team = np.empty(2 * nb, dtype=object)
+    team[0::2], team[1::2] = got["team_all"], got["team_linked"]
+    return (np.repeat(got["day"], 2), np.tile(np.array([False, True]), nb), team,
+            got["sums"].reshape(2 * nb, layout.set_width))  # fmt: skip
 
 
 def _rank(team: np.ndarray) -> np.ndarray:
@@ -436,26 +442,8 @@ def lake_rows_loader(con, config: Config):
                 "SELECT batch_id, watermark_after, watermark_through, horizon FROM lake_runs "
                 "WHERE kind = ? ORDER BY watermark_through", [kind]).fetchall()]  # fmt: skip
             out[kind] = _with_runs(spark, _read(spark, config, kind), runs) if runs else None
+        _, _, accepted, current = _settled(spark, config, out)
         names = records.parsed_names(config, "decisions")
-        settled = records.settle_decisions(
-            config,
-            records.check(config, "decisions", out["decisions"], earliest=config.ingest.earliest),
-        )
-        accepted = settled.filter(F.col("reason").isNull() & ~F.col("duplicate"))
-        if out.get("outcomes") is not None:
-            dec = accepted.select(
-                F.col(names["id"]).alias("_did"),
-                F.col(names["time"]).alias("_dat"),
-                F.col("_run").alias("_drun"),
-            )
-            so = records.settle_outcomes(
-                config,
-                records.check(config, "outcomes", out["outcomes"], earliest=config.ingest.earliest),
-                dec,
-            )
-            current = records.current_outcomes(config, so)
-        else:
-            current = spark.createDataFrame([], "_oid string, _crit double")
         cache["rows"] = sums.design(config, accepted, names).cache()
         cache["current"] = current
         return cache["rows"], current

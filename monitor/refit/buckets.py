@@ -172,6 +172,24 @@ def _finish_set(part: np.ndarray, p: int, shift: np.ndarray) -> Moments:
     return finish_moments(n, shift[:, :p], s, q)
 
 
+def array_rows(arrow_column, width: int) -> np.ndarray:
+    """A fetched fixed-size DOUBLE array column as a fresh (m, width) float array (one
+    copy: each chunk's values are read in place)."""
+    parts = [c.flatten().to_numpy(zero_copy_only=False) for c in arrow_column.chunks]
+    if not parts:
+        return np.zeros((0, width))
+    return np.concatenate(parts).reshape(-1, width)
+
+
+def stored_shifts(con, p: int) -> tuple[np.ndarray, np.ndarray]:
+    """Every decision-maker's stored reference: ids in id order (as ``windows._NUMBERED``
+    numbers them) and their (e, p) shifts."""
+    table = con.sql(
+        "SELECT decision_maker, shift FROM bucket_shifts ORDER BY decision_maker"
+    ).to_arrow_table()
+    return np.array(table.column(0).to_pylist(), dtype=object), array_rows(table.column(1), p)
+
+
 # --- bucket SQL ------------------------------------------------------------------------
 
 # 2^33 + 1: the shift is the mean cut to 20 significant bits (Veltkamp's split), so a

@@ -1,4 +1,6 @@
-"""Window fits as rows of the store's ``fits`` and ``cue_weights`` tables.
+"""Window fits as rows of the store's ``fits`` and ``cue_weights`` tables, and bucket
+statistics as rows of ``bucket_stats`` / ``bucket_shifts`` (every writer of them: the
+full refit, the nightly's delta and re-sum, the lake path).
 
 The rows are built as Arrow tables straight from the numpy stacks and inserted with
 one ``INSERT ... SELECT`` each: building them from Python lists of arrays and pandas
@@ -43,6 +45,51 @@ def insert_arrow(con, table: str, data: pa.Table, where: str = "TRUE") -> None:
         con.execute(f"INSERT INTO {table} ({cols}) SELECT {cols} FROM {name} WHERE {where}")
     finally:
         con.unregister(name)
+
+
+def insert_bucket_rows(con, keys: np.ndarray, ent, day, linked, team, sums) -> None:
+    """Append bucket rows to ``bucket_stats``: row i is decision-maker ``keys[ent[i]]``'s
+    set ``linked[i]`` (the outcome-linked rows, or all rows) of the bucket starting on day
+    number ``day[i]``, with ``team[i]`` and the (m, set_width) ``sums``.  A linked set
+    that holds no row is left out.  The sums go to DuckDB without a copy when they are
+    contiguous float64."""
+    names = pa.array([str(k) for k in keys], pa.string())
+    data = pa.table(
+        {
+            "decision_maker": pa.DictionaryArray.from_arrays(
+                pa.array(np.asarray(ent, dtype=np.int32)), names
+            ),
+            "day": pa.array(np.asarray(day, dtype=np.int32)).cast(pa.date32()),
+            "linked_only": pa.array(np.asarray(linked, dtype=bool)),
+            "team": pa.array(list(team), pa.string()),
+            "sums": pa.FixedSizeListArray.from_arrays(
+                pa.array(np.ascontiguousarray(sums, dtype=float).ravel()), sums.shape[1]
+            ),
+        }
+    )
+    insert_arrow(con, "bucket_stats", data, where="NOT linked_only OR sums[1] > 0")
+
+
+def insert_bucket_shifts(con, keys, shift: np.ndarray) -> None:
+    """Append decision-makers' references (``keys``, (e, p_linked) ``shift``) to
+    ``bucket_shifts``."""
+    shift = np.ascontiguousarray(shift, dtype=float)
+    data = pa.table(
+        {
+            "decision_maker": pa.array([str(k) for k in keys], pa.string()),
+            "shift": pa.FixedSizeListArray.from_arrays(pa.array(shift.ravel()), shift.shape[1]),
+        }
+    )
+    insert_arrow(con, "bucket_shifts", data)
+
+
+def delete_buckets(con, listed: str) -> None:
+    """Delete both sets of every bucket (decision_maker, day) that the table or
+    registered relation ``listed`` names."""
+    con.execute(
+        f"DELETE FROM bucket_stats b USING {listed} r "
+        "WHERE b.decision_maker = r.decision_maker AND b.day = r.day"
+    )
 
 
 def fit_tables(

@@ -16,8 +16,8 @@ import numpy as np
 import pyarrow as pa
 
 from monitor.config import Config
-from monitor.refit.buckets import StatLayout, design_expressions
-from monitor.refit.fits_write import insert_arrow
+from monitor.refit.buckets import StatLayout, design_expressions, stored_shifts
+from monitor.refit.fits_write import delete_buckets, insert_bucket_rows, insert_bucket_shifts
 from monitor.refit.kernel import BucketAccumulator, BucketSums
 from monitor.refit.plan import Buckets, latest_teams
 from monitor.refit.stretches import Stretches
@@ -157,21 +157,13 @@ def resum_buckets(con, config: Config, layout: StatLayout, only: str) -> int:
         f"SELECT count(*), (min(day) - DATE '1970-01-01')::BIGINT, "
         f"(max(day) - DATE '1970-01-01')::BIGINT FROM {only}"
     ).fetchall()[0]
-    con.execute(
-        f"DELETE FROM bucket_stats b USING {only} r "
-        "WHERE b.decision_maker = r.decision_maker AND b.day = r.day"
-    )
+    delete_buckets(con, only)
     if not n:
         return 0
     stretches = Stretches.of(config)
     hi = int(stretches.last([hi])[0])
-    table = con.sql(
-        "SELECT decision_maker, shift FROM bucket_shifts ORDER BY decision_maker"
-    ).to_arrow_table()
-    makers = table.column(0).to_pylist()
-    shift = np.concatenate(
-        [c.flatten().to_numpy(zero_copy_only=False) for c in table.column(1).chunks]
-    )
+    keys, shift = stored_shifts(con, layout.p_linked)
+    makers = [str(k) for k in keys]
     span = (f"decided_day BETWEEN DATE '1970-01-01' + {int(lo)}::INTEGER "
             f"AND DATE '1970-01-01' + {int(hi)}::INTEGER")  # fmt: skip
     # The days' decisions (DuckDB skips other row groups), then those of the listed
@@ -187,8 +179,8 @@ def resum_buckets(con, config: Config, layout: StatLayout, only: str) -> int:
     res, teams = _stream_sums(
         con, config, layout, makers, chosen, days_ids, (int(lo), hi), room, 0.0, shift
     )
-    frame = _frame(layout, np.array(makers, dtype=object), None, res.ent, res, teams)
-    _insert_buckets(con, layout, frame)
+    frame = _frame(layout, keys, None, res.ent, res, teams)
+    _insert(con, frame)
     return len(res.ent)
 
 
@@ -196,30 +188,12 @@ def write_buckets(con, layout: StatLayout, buckets: Buckets) -> int:
     """Write ``bucket_shifts`` and ``bucket_stats`` (every all-rows set; the linked sets
     that hold a row) from ``sum_buckets``'s frame, in its (day, decision-maker, set)
     order; returns the buckets written."""
-    keys = pa.array(list(buckets.keys), pa.string())
-    shifts = pa.FixedSizeListArray.from_arrays(
-        pa.array(np.ascontiguousarray(buckets.shift).ravel()), layout.p_linked
-    )
-    insert_arrow(con, "bucket_shifts", pa.table({"decision_maker": keys, "shift": shifts}))
-    _insert_buckets(con, layout, buckets)
+    insert_bucket_shifts(con, buckets.keys, buckets.shift)
+    _insert(con, buckets)
     return int((~buckets.linked).sum())
 
 
-def _insert_buckets(con, layout: StatLayout, buckets: Buckets) -> None:
+def _insert(con, b: Buckets) -> None:
     # The rows are in (day, decision-maker, set) order already (``kernel``); the arrays
-    # go to DuckDB without a copy, and the linked sets without a row are left out there.
-    keys = pa.array(list(buckets.keys), pa.string())
-    data = pa.table(
-        {
-            "decision_maker": pa.DictionaryArray.from_arrays(
-                pa.array(buckets.ent.astype(np.int32)), keys
-            ),
-            "day": pa.array(buckets.day.astype(np.int32)).cast(pa.date32()),
-            "linked_only": pa.array(buckets.linked),
-            "team": pa.array(list(buckets.row_team), pa.string()),
-            "sums": pa.FixedSizeListArray.from_arrays(
-                pa.array(buckets.sums.reshape(-1)), layout.set_width
-            ),
-        }
-    )
-    insert_arrow(con, "bucket_stats", data, where="NOT linked_only OR sums[1] > 0")
+    # go to DuckDB without a copy.
+    insert_bucket_rows(con, b.keys, b.ent, b.day, b.linked, b.row_team, b.sums)

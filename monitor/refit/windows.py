@@ -33,12 +33,14 @@ import pyarrow.compute as pc
 from monitor.config import Config
 from monitor.refit.buckets import (
     StatLayout,
+    array_rows,
     delta_sql,
     design_expressions,
     new_shift_sql,
     recompute_sql,
+    stored_shifts,
 )
-from monitor.refit.fits_write import delete_windows, fit_tables, insert_arrow
+from monitor.refit.fits_write import delete_windows, fit_tables, insert_arrow, insert_bucket_rows
 from monitor.refit.plan import (
     ALL_KEY,
     Buckets,
@@ -96,15 +98,6 @@ _NUMBERED = (
 )
 
 
-def _array_rows(arrow_column, width: int) -> np.ndarray:
-    """A fetched fixed-size DOUBLE array column as a fresh (m, width) float array (one
-    copy: each chunk's values are read in place)."""
-    parts = [c.flatten().to_numpy(zero_copy_only=False) for c in arrow_column.chunks]
-    if not parts:
-        return np.zeros((0, width))
-    return np.concatenate(parts).reshape(-1, width)
-
-
 def _strings(arrow_column) -> tuple[np.ndarray, np.ndarray]:
     """A fetched string column as (object array with None for NULL, integer codes in
     the values' sorted order with -1 for NULL), decoded once per distinct value."""
@@ -130,7 +123,7 @@ def _fetch_rows(con, layout: StatLayout, sql: str) -> dict[str, np.ndarray]:
         "day": table.column(1).to_numpy().astype(np.int64),
         "linked": table.column(2).to_numpy(zero_copy_only=False).astype(bool),
         **dict(zip(("team", "team_code"), _strings(table.column(3)), strict=True)),
-        "sums": _array_rows(table.column(4), layout.set_width),
+        "sums": array_rows(table.column(4), layout.set_width),
     }
 
 
@@ -142,11 +135,7 @@ def _fetch_buckets(con, layout: StatLayout, day_range: tuple[int, int] | None) -
         lo, hi = (from_day_number(d).isoformat() for d in day_range)
         where = f"WHERE day BETWEEN DATE '{lo}' AND DATE '{hi}'"
     rows = _fetch_rows(con, layout, f"SELECT * FROM bucket_stats {where}")
-    table = con.sql(
-        "SELECT decision_maker, shift FROM bucket_shifts ORDER BY decision_maker"
-    ).to_arrow_table()
-    keys = np.array(table.column(0).to_pylist(), dtype=object)
-    shift = _array_rows(table.column(1), layout.p_linked)
+    keys, shift = stored_shifts(con, layout.p_linked)
     teams = latest_teams(len(keys), rows["ent"], rows["day"], rows["team"], rows["team_code"])
     return Buckets(
         keys,
@@ -158,21 +147,6 @@ def _fetch_buckets(con, layout: StatLayout, day_range: tuple[int, int] | None) -
         rows["team"],
         rows["sums"],
     )
-
-
-def _write_rows(con, keys: np.ndarray, ent, day, linked, team, sums) -> None:
-    width = sums.shape[1]
-    values = pa.array(np.ascontiguousarray(sums, dtype=float).ravel())
-    data = pa.table(
-        {
-            "decision_maker": pa.array(list(keys[ent]), pa.string()),
-            "day": pa.array(np.asarray(day, dtype=np.int32), pa.int32()).cast(pa.date32()),
-            "linked_only": pa.array(np.asarray(linked, dtype=bool)),
-            "team": pa.array(list(team), pa.string()),
-            "sums": pa.FixedSizeListArray.from_arrays(values, width),
-        }
-    )
-    insert_arrow(con, "bucket_stats", data)
 
 
 # --- fitting ------------------------------------------------------------------------
@@ -489,7 +463,7 @@ def _apply_delta(con, buckets: Buckets, delta: dict[str, np.ndarray]) -> tuple[B
         )
     finally:
         con.unregister("_changed_rows")
-    _write_rows(
+    insert_bucket_rows(
         con, buckets.keys, ent[changed], day[changed], linked[changed], team[changed], sums[changed]
     )
     codes = _strings(pa.chunked_array([pa.array(list(team), pa.string())]))[1]
